@@ -1,0 +1,77 @@
+"""The structured config schema, registered with Hydra's ConfigStore.
+
+Types are checked by OmegaConf when Hydra composes the config (a string where a
+number belongs fails there, naming the key); value ranges and choices are checked by
+:func:`qtally.config.validate.validate` before any work starts.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Optional
+
+from hydra.core.config_store import ConfigStore
+from omegaconf import MISSING
+
+__all__ = ["EnvConfig", "VariantConfig", "ScheduleConfig", "TrackingConfig", "TrainConfig", "register_schema"]
+
+
+@dataclass
+class EnvConfig:
+    id: str = MISSING
+    kwargs: dict[str, Any] = field(default_factory=dict)
+    max_episode_steps: Optional[int] = None
+    observation_names: Optional[list[str]] = None
+    bins: Optional[list[int]] = None
+    low: Optional[list[float]] = None
+    high: Optional[list[float]] = None
+    truncation: str = "bootstrap"
+
+
+@dataclass
+class VariantConfig:
+    name: str = MISSING
+    first_visit: bool = True
+    step_size: Optional[float] = None
+
+
+@dataclass
+class ScheduleConfig:
+    kind: str = "constant"
+    epsilon: Optional[float] = None
+    start: Optional[float] = None
+    end: Optional[float] = None
+    decay_episodes: Optional[int] = None
+    rate: Optional[float] = None
+    scale: Optional[float] = None
+    floor: Optional[float] = None
+
+
+@dataclass
+class TrackingConfig:
+    uri: Optional[str] = None
+    experiment: str = "qtally"
+    run_name: Optional[str] = None
+    log_model: bool = True
+
+
+@dataclass
+class TrainConfig:
+    env: EnvConfig = MISSING
+    variant: VariantConfig = MISSING
+    schedule: ScheduleConfig = MISSING
+    tracking: TrackingConfig = field(default_factory=TrackingConfig)
+    episodes: int = 5000
+    gamma: float = 1.0
+    seed: int = 0
+    log_every: int = 100
+    eval_every: int = 1000
+    eval_episodes: int = 200
+    snapshot_every: int = 0
+    initial_value: float = 0.0
+    exact: bool = True
+    quiet: bool = False
+
+
+def register_schema() -> None:
+    ConfigStore.instance().store(name="base_train", node=TrainConfig)

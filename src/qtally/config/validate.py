@@ -1,0 +1,67 @@
+"""Check a composed config before any work starts: every message names the key, the value and what is allowed."""
+
+from __future__ import annotations
+
+from omegaconf import DictConfig
+
+from ..control.schedules import SCHEDULE_KINDS
+from ..control.variants import VARIANT_NAMES
+from ..trainer import TRUNCATION_CHOICES
+
+__all__ = ["ConfigError", "validate", "schedule_parameters"]
+
+_SCHEDULE_PARAMETERS = {
+    "constant": ("epsilon",),
+    "linear": ("start", "end", "decay_episodes"),
+    "exponential": ("start", "rate", "floor"),
+    "glie_episode": ("scale", "floor"),
+    "glie_visits": ("scale", "floor"),
+}
+_UNIT_KEYS = ("epsilon", "start", "end", "floor")
+
+
+class ConfigError(ValueError):
+    """A config value is out of range or unknown."""
+
+
+def schedule_parameters(schedule: DictConfig) -> dict:
+    kind = schedule.kind
+    if kind not in SCHEDULE_KINDS:
+        raise ConfigError(f"schedule.kind={kind!r} is unknown; choose one of {', '.join(SCHEDULE_KINDS)}")
+    parameters = {}
+    for key in _SCHEDULE_PARAMETERS[kind]:
+        value = schedule.get(key)
+        if value is None:
+            raise ConfigError(f"schedule.{key} is required for schedule.kind={kind}")
+        parameters[key] = value
+    return parameters
+
+
+def validate(cfg: DictConfig) -> None:
+    if cfg.episodes <= 0:
+        raise ConfigError(f"episodes={cfg.episodes} must be a positive number of episodes")
+    if not 0.0 <= cfg.gamma <= 1.0:
+        raise ConfigError(f"gamma={cfg.gamma} is outside [0, 1]; the discount must lie in [0, 1]")
+    if cfg.variant.name not in VARIANT_NAMES:
+        raise ConfigError(f"variant.name={cfg.variant.name!r} is unknown; choose one of {', '.join(VARIANT_NAMES)}")
+    if cfg.variant.step_size is not None and not 0.0 < cfg.variant.step_size <= 1.0:
+        raise ConfigError(f"variant.step_size={cfg.variant.step_size} must lie in (0, 1], or be null for the sample average")
+    if cfg.env.truncation not in TRUNCATION_CHOICES:
+        raise ConfigError(f"env.truncation={cfg.env.truncation!r}; choose one of {', '.join(TRUNCATION_CHOICES)}")
+    parameters = schedule_parameters(cfg.schedule)
+    for key in _UNIT_KEYS:
+        value = parameters.get(key)
+        if value is not None and not 0.0 <= value <= 1.0:
+            raise ConfigError(f"schedule.{key}={value} is outside [0, 1]; epsilon values must lie in [0, 1]")
+    if cfg.schedule.kind == "exponential" and not 0.0 < parameters["rate"] <= 1.0:
+        raise ConfigError(f"schedule.rate={parameters['rate']} must lie in (0, 1]")
+    if cfg.schedule.kind == "linear" and parameters["decay_episodes"] < 1:
+        raise ConfigError(f"schedule.decay_episodes={parameters['decay_episodes']} must be a positive episode count")
+    if cfg.schedule.kind.startswith("glie") and parameters["scale"] <= 0:
+        raise ConfigError(f"schedule.scale={parameters['scale']} must be positive")
+    for key in ("log_every", "eval_episodes"):
+        if cfg[key] <= 0:
+            raise ConfigError(f"{key}={cfg[key]} must be positive")
+    for key in ("eval_every", "snapshot_every"):
+        if cfg[key] < 0:
+            raise ConfigError(f"{key}={cfg[key]} must be 0 (off) or a positive episode count")

@@ -1,0 +1,53 @@
+"""The Q table and its bookkeeping: visit counts and, for weighted importance sampling, cumulative weights.
+
+Memory is O(|S| |A|) whatever the number of episodes: estimates are updated
+incrementally and no list of returns is ever kept.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["ActionValues", "greedy_actions"]
+
+
+@dataclass
+class ActionValues:
+    """Q(s, a) estimates, how many returns each has absorbed, and cumulative IS weights."""
+
+    q: np.ndarray
+    visits: np.ndarray
+    cumulative_weights: np.ndarray
+    state_visits: np.ndarray
+
+    @classmethod
+    def zeros(cls, n_states: int, n_actions: int, initial_value: float = 0.0) -> "ActionValues":
+        return cls(
+            q=np.full((n_states, n_actions), float(initial_value)),
+            visits=np.zeros((n_states, n_actions), dtype=np.int64),
+            cumulative_weights=np.zeros((n_states, n_actions)),
+            state_visits=np.zeros(n_states, dtype=np.int64),
+        )
+
+    @property
+    def n_states(self) -> int:
+        return self.q.shape[0]
+
+    @property
+    def n_actions(self) -> int:
+        return self.q.shape[1]
+
+    def coverage(self) -> float:
+        """Fraction of state-action pairs whose estimate has absorbed at least one return."""
+        return float(np.count_nonzero(self.visits)) / self.visits.size
+
+
+def greedy_actions(q: np.ndarray) -> np.ndarray:
+    """argmax per row, ties to the lowest action index (deterministic, reproducible).
+
+    >>> greedy_actions(np.array([[0.0, 1.0], [2.0, 2.0]]))
+    array([1, 0])
+    """
+    return np.argmax(q, axis=1)

@@ -1,0 +1,160 @@
+"""The three Monte Carlo control variants, as updates of a Q table from one finished episode.
+
+Each variant answers two questions: how the next episode is played (``epsilon_for``,
+``needs_start_control``) and how a played episode changes the estimates (``update``).
+All take arrays and return nothing; the state lives in :class:`ActionValues`.
+
+- ``exploring_starts``: episodes begin from a random state-action pair, then act greedily.
+- ``on_policy``: first-visit (or every-visit) control of an epsilon-soft policy.
+- ``off_policy``: weighted importance sampling with an epsilon-soft behaviour policy
+  and a greedy target; the backward loop stops where the behaviour action leaves the target.
+
+Step size: ``None`` means the sample average (1/N, or W/C for weighted IS); a number
+means a constant step. For off-policy with a constant step the update is
+``Q += min(1, step * W) * (G - Q)``, so a large weight cannot overshoot the return.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .action_values import ActionValues
+
+__all__ = ["EpisodeArrays", "ExploringStarts", "OnPolicy", "OffPolicy", "make_variant", "VARIANT_NAMES"]
+
+
+@dataclass(frozen=True)
+class EpisodeArrays:
+    """One played episode: states and actions as table indices, the rewards that followed.
+
+    ``behaviour_probabilities[t]`` is the probability the acting policy gave ``actions[t]``;
+    ``tail_value`` is what the return is seeded with after the last reward (0 when the
+    episode terminated; a bootstrap estimate when a time limit cut it short).
+    """
+
+    states: np.ndarray
+    actions: np.ndarray
+    rewards: np.ndarray
+    behaviour_probabilities: np.ndarray
+    tail_value: float = 0.0
+
+    @property
+    def length(self) -> int:
+        return int(self.states.shape[0])
+
+
+def _first_visit_times(keys: list[int]) -> dict[int, int]:
+    first: dict[int, int] = {}
+    for t, key in enumerate(keys):
+        first.setdefault(key, t)
+    return first
+
+
+@dataclass(frozen=True)
+class _EvaluationUpdate:
+    """Shared by exploring starts and on-policy: average the returns that follow each visit.
+
+    A plain backward loop, G = r + gamma * G, updating each counted visit as it goes:
+    episodes are walked once, and scalar Python beats array calls at these lengths
+    (the array form, :func:`~qtally.control.returns.discounted_returns`, computes the
+    same returns and is the reference in the tests).
+    """
+
+    gamma: float
+    first_visit: bool = True
+    step_size: float | None = None
+
+    def update(self, values: ActionValues, episode: EpisodeArrays) -> None:
+        if episode.length == 0:
+            return
+        n_actions = values.n_actions
+        states, actions, rewards = episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist()
+        keys = [s * n_actions + a for s, a in zip(states, actions)]
+        first = _first_visit_times(keys) if self.first_visit else None
+        q, visits, gamma, step_size = values.q, values.visits, self.gamma, self.step_size
+        g = episode.tail_value
+        for t in range(len(keys) - 1, -1, -1):
+            g = gamma * g + rewards[t]
+            if first is not None and first[keys[t]] != t:
+                continue
+            s, a = states[t], actions[t]
+            visits[s, a] += 1
+            step = 1.0 / visits[s, a] if step_size is None else step_size
+            q[s, a] += step * (g - q[s, a])
+
+
+@dataclass(frozen=True)
+class ExploringStarts(_EvaluationUpdate):
+    """Random start pair, greedy afterwards: epsilon is always 0."""
+
+    name = "exploring_starts"
+    needs_start_control = True
+
+    def behaviour_epsilon(self, epsilon: float) -> float:
+        return 0.0
+
+
+@dataclass(frozen=True)
+class OnPolicy(_EvaluationUpdate):
+    """The acting policy and the evaluated policy are the same epsilon-soft policy."""
+
+    name = "on_policy"
+    needs_start_control = False
+
+    def behaviour_epsilon(self, epsilon: float) -> float:
+        return epsilon
+
+
+@dataclass(frozen=True)
+class OffPolicy:
+    """Weighted importance sampling towards the greedy target policy."""
+
+    gamma: float
+    first_visit: bool = False
+    step_size: float | None = None
+
+    name = "off_policy"
+    needs_start_control = False
+
+    def behaviour_epsilon(self, epsilon: float) -> float:
+        return epsilon
+
+    def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
+        """Run the weighted-IS backward loop; return how many time steps were used."""
+        if episode.length == 0:
+            return 0
+        n_actions = values.n_actions
+        keys = (episode.states * n_actions + episode.actions).tolist()
+        first = _first_visit_times(keys) if self.first_visit else None
+        q, weights_sum, visits = values.q, values.cumulative_weights, values.visits
+        g = episode.tail_value
+        w = 1.0
+        used = 0
+        for t in range(episode.length - 1, -1, -1):
+            s = int(episode.states[t])
+            a = int(episode.actions[t])
+            g = self.gamma * g + float(episode.rewards[t])
+            if first is None or first[keys[t]] == t:
+                weights_sum[s, a] += w
+                visits[s, a] += 1
+                step = w / weights_sum[s, a] if self.step_size is None else min(1.0, self.step_size * w)
+                q[s, a] += step * (g - q[s, a])
+            used += 1
+            if a != int(np.argmax(q[s])):
+                break
+            w /= float(episode.behaviour_probabilities[t])
+        return used
+
+
+VARIANT_NAMES = ("exploring_starts", "on_policy", "off_policy")
+
+
+def make_variant(name: str, gamma: float, first_visit: bool, step_size: float | None):
+    """Build a variant from its config name."""
+    classes = {"exploring_starts": ExploringStarts, "on_policy": OnPolicy, "off_policy": OffPolicy}
+    try:
+        return classes[name](gamma=gamma, first_visit=first_visit, step_size=step_size)
+    except KeyError:
+        raise ValueError(f"variant.name={name!r} is unknown; choose one of {', '.join(VARIANT_NAMES)}") from None

@@ -1,0 +1,1 @@
+"""qtally.engine"""

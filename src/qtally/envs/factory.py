@@ -1,0 +1,115 @@
+"""Make an environment from its config: a registered Gymnasium id or a ``module:Class`` entry point.
+
+The result, :class:`TabularEnvironment`, bundles what the trainer needs from the edge:
+the environment, its observation encoder, the number of actions, exploring-start
+support if any, and a signature that a saved policy is checked against.
+"""
+
+from __future__ import annotations
+
+import importlib
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import gymnasium as gym
+from gymnasium import spaces
+from gymnasium.wrappers import TimeLimit
+
+from .encoders import Encoder, EncoderError, encoder_for_space
+from .start_adapters import start_control_for
+from .start_control import StartControl
+
+__all__ = ["EnvironmentError_", "TabularEnvironment", "make_environment", "EnvironmentSpec"]
+
+
+class EnvironmentError_(ValueError):
+    """The configured environment cannot be made or cannot be learned with a table."""
+
+
+@dataclass(frozen=True)
+class EnvironmentSpec:
+    """What the ``env`` config group holds (see ``configs/env/*.yaml``)."""
+
+    id: str
+    kwargs: Mapping[str, Any] = field(default_factory=dict)
+    max_episode_steps: int | None = None
+    observation_names: Sequence[str] | None = None
+    bins: Sequence[int] | None = None
+    low: Sequence[float] | None = None
+    high: Sequence[float] | None = None
+
+
+@dataclass
+class TabularEnvironment:
+    env: gym.Env
+    encoder: Encoder
+    n_actions: int
+    start_control: StartControl | None
+    spec: EnvironmentSpec
+
+    @property
+    def n_states(self) -> int:
+        return self.encoder.n_states
+
+    def signature(self) -> dict:
+        """What a policy learned here must match to be used here."""
+        return {"env_id": self.spec.id, "observation": self.encoder.spec(), "n_actions": self.n_actions}
+
+    def close(self) -> None:
+        self.env.close()
+
+
+def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
+    kwargs = dict(spec.kwargs or {})
+    if render_mode is not None:
+        kwargs["render_mode"] = render_mode
+    if ":" in spec.id and "/" not in spec.id.split(":", 1)[0]:
+        module_name, _, class_name = spec.id.partition(":")
+        try:
+            module = importlib.import_module(module_name)
+        except ImportError as exc:
+            raise EnvironmentError_(f"env.id={spec.id!r}: cannot import module {module_name!r} ({exc}); check the entry point 'module:Class'") from None
+        cls = getattr(module, class_name, None)
+        if cls is None:
+            raise EnvironmentError_(f"env.id={spec.id!r}: module {module_name!r} has no {class_name!r}; check the entry point 'module:Class'")
+        try:
+            env = cls(**kwargs)
+        except TypeError as exc:
+            raise EnvironmentError_(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+        if spec.max_episode_steps:
+            env = TimeLimit(env, max_episode_steps=int(spec.max_episode_steps))
+        return env
+    from . import register_bundled
+
+    register_bundled()
+    extra = {"max_episode_steps": int(spec.max_episode_steps)} if spec.max_episode_steps else {}
+    try:
+        return gym.make(spec.id, disable_env_checker=True, **extra, **kwargs)
+    except gym.error.Error as exc:
+        message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise EnvironmentError_(f"env.id={spec.id!r} is not a registered Gymnasium environment ({message}); use a registered id or a 'module:Class' entry point") from None
+    except TypeError as exc:
+        raise EnvironmentError_(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+
+
+def make_environment(spec: EnvironmentSpec, render_mode: str | None = None) -> TabularEnvironment:
+    """Make the environment and check that a Q table can hold it."""
+    env = _construct(spec, render_mode)
+    if not isinstance(env.action_space, spaces.Discrete):
+        env.close()
+        raise EnvironmentError_(
+            f"env.id={spec.id!r} has a {type(env.action_space).__name__} action space; tabular control needs Discrete actions"
+        )
+    names = spec.observation_names or getattr(env.unwrapped, "observation_names", None)
+    try:
+        encoder = encoder_for_space(env.observation_space, names=names, bins=spec.bins, low=spec.low, high=spec.high)
+    except EncoderError as exc:
+        env.close()
+        raise EnvironmentError_(f"env.id={spec.id!r}: {exc}") from None
+    return TabularEnvironment(
+        env=env,
+        encoder=encoder,
+        n_actions=int(env.action_space.n),
+        start_control=start_control_for(env),
+        spec=spec,
+    )

@@ -1,0 +1,218 @@
+"""One training run, end to end: config -> environment -> trainer -> MLflow record.
+
+This is the wiring behind ``qtally-train``. It validates everything it can before a
+run is opened (so bad input leaves no run behind), opens the MLflow run, trains with
+an :class:`~qtally.tracking.mlflow_sink.MlflowRecorder`, writes the artifacts, and
+closes the run as FINISHED, or FAILED/KILLED if anything goes wrong on the way.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from omegaconf import DictConfig, OmegaConf
+
+from .config.validate import ConfigError, schedule_parameters, validate
+from .control.schedules import make_schedule
+from .control.variants import make_variant
+from .envs.factory import EnvironmentError_, EnvironmentSpec, TabularEnvironment, make_environment
+from .trainer import TrainingOutcome, TrainingSettings, train
+
+__all__ = ["QtallyError", "RunSummary", "run_training", "resolve_tracking_uri", "environment_spec"]
+
+DEFAULT_TRACKING_URI = "sqlite:///mlflow.db"
+
+
+class QtallyError(Exception):
+    """An error the user can fix; the command line prints its one-line message."""
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    run_id: str
+    experiment_id: str
+    tracking_uri: str
+    final_evaluation: dict
+    outcome: TrainingOutcome
+
+
+def resolve_tracking_uri(configured: str | None) -> str:
+    return configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
+
+
+def environment_spec(env_cfg: DictConfig) -> EnvironmentSpec:
+    return EnvironmentSpec(
+        id=env_cfg.id,
+        kwargs=OmegaConf.to_container(env_cfg.kwargs, resolve=True) if env_cfg.kwargs is not None else {},
+        max_episode_steps=env_cfg.max_episode_steps,
+        observation_names=list(env_cfg.observation_names) if env_cfg.observation_names else None,
+        bins=list(env_cfg.bins) if env_cfg.bins else None,
+        low=list(env_cfg.low) if env_cfg.low else None,
+        high=list(env_cfg.high) if env_cfg.high else None,
+    )
+
+
+def _flatten(node, prefix: str = "") -> dict[str, str]:
+    flat: dict[str, str] = {}
+    if isinstance(node, dict):
+        if not node and prefix:
+            flat[prefix[:-1]] = "{}"
+        for key, value in node.items():
+            flat.update(_flatten(value, f"{prefix}{key}."))
+    else:
+        flat[prefix[:-1]] = str(node)
+    return flat
+
+
+def _exact_probes(environment: TabularEnvironment, gamma: float):
+    """Exact optimality metrics where the environment exposes a model; () and a reason otherwise."""
+    from .envs.model import NoModelError
+    from .envs.model_extraction import model_of
+    from .evaluate.exact import ImproperPolicyError, NotConvergedError, optimal_action_fraction, optimality_gap, value_iteration
+
+    try:
+        model = model_of(environment.env)
+        if model.n_states != environment.n_states:
+            return (), None, "the model's state count does not match the observation table"
+        solution = value_iteration(model, gamma)
+    except (NoModelError, ImproperPolicyError, NotConvergedError) as exc:
+        return (), None, str(exc)
+
+    def probe(q: np.ndarray) -> dict[str, float]:
+        gap = optimality_gap(model, q, gamma, v_star=solution.v_star)
+        return {"optimality_gap": float(gap.gap), "optimal_action_fraction": float(optimal_action_fraction(model, q, solution.q_star))}
+
+    return (probe,), (model, solution), None
+
+
+def _write_q_table_csv(environment: TabularEnvironment, outcome: TrainingOutcome, path: Path) -> Path:
+    q, visits, actions = outcome.values.q, outcome.values.visits, outcome.artifact.actions
+    with path.open("w", newline="") as stream:
+        writer = csv.writer(stream)
+        writer.writerow(["state", "observation"] + [f"q_{a}" for a in range(q.shape[1])] + [f"visits_{a}" for a in range(q.shape[1])] + ["greedy_action"])
+        for s in np.flatnonzero(visits.sum(axis=1) > 0):
+            writer.writerow([int(s), environment.encoder.describe(int(s))] + [f"{x:.6g}" for x in q[s]] + [int(x) for x in visits[s]] + [int(actions[s])])
+    return path
+
+
+def prepare(cfg: DictConfig):
+    """Everything that can fail on bad input, done before a run exists."""
+    try:
+        validate(cfg)
+    except ConfigError as exc:
+        raise QtallyError(str(exc)) from None
+    variant = make_variant(cfg.variant.name, cfg.gamma, cfg.variant.first_visit, cfg.variant.step_size)
+    schedule = make_schedule(cfg.schedule.kind, **schedule_parameters(cfg.schedule))
+    spec = environment_spec(cfg.env)
+    try:
+        environment = make_environment(spec)
+        evaluation_environment = make_environment(spec)
+    except EnvironmentError_ as exc:
+        raise QtallyError(str(exc)) from None
+    if variant.needs_start_control and environment.start_control is None:
+        environment.close()
+        evaluation_environment.close()
+        raise QtallyError(
+            f"variant=exploring_starts needs an environment whose start state can be set, and {spec.id!r} cannot; "
+            "use variant=on_policy or variant=off_policy, or implement start_states()/reset_to() (see DEVELOPERS.md)"
+        )
+    return variant, schedule, environment, evaluation_environment
+
+
+def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSummary:
+    """Train once and record the run; raises :class:`QtallyError` for input the user can fix."""
+    variant, schedule, environment, evaluation_environment = prepare(cfg)
+    import mlflow
+    from mlflow.tracking import MlflowClient
+
+    from .envs.pictures import policy_pictures
+    from .plots import learning_curve
+    from .tracking.mlflow_sink import MlflowRecorder
+    from .tracking.policy_model import log_policy_model
+
+    uri = resolve_tracking_uri(cfg.tracking.uri)
+    try:
+        mlflow.set_tracking_uri(uri)
+        experiment = mlflow.set_experiment(cfg.tracking.experiment)
+    except Exception as exc:  # a bad URI or an unreachable store: say so in one line
+        raise QtallyError(f"tracking.uri={uri!r}: cannot open the MLflow store ({str(exc).splitlines()[0][:200]})") from None
+    probes, exact, exact_reason = _exact_probes(environment, cfg.gamma) if cfg.exact else ((), None, "exact=false")
+
+    resolved = OmegaConf.to_container(cfg, resolve=True)
+    tags = {
+        "env": cfg.env.id,
+        "variant": cfg.variant.name,
+        "schedule": cfg.schedule.kind,
+        "seed": str(cfg.seed),
+        "qtally.exact_metrics": "yes" if exact else f"no: {exact_reason}"[:250],
+    }
+    client = MlflowClient()
+    run = mlflow.start_run(run_name=cfg.tracking.run_name, tags=tags)
+    run_id = run.info.run_id
+    status = "FAILED"
+    try:
+        params = _flatten(resolved)
+        items = list(params.items())
+        for i in range(0, len(items), 100):
+            mlflow.log_params(dict(items[i : i + 100]))
+        if announce:
+            announce(run_id)
+        recorder = MlflowRecorder(client, run_id)
+        settings = TrainingSettings(
+            episodes=cfg.episodes,
+            seed=cfg.seed,
+            log_every=cfg.log_every,
+            eval_every=cfg.eval_every,
+            eval_episodes=cfg.eval_episodes,
+            snapshot_every=cfg.snapshot_every,
+            truncation=cfg.env.truncation,
+            initial_value=cfg.initial_value,
+        )
+        progress = progress_factory(cfg.episodes) if progress_factory else None
+        try:
+            outcome = train(
+                environment,
+                variant,
+                schedule,
+                settings,
+                recorder=recorder,
+                evaluation_environment=evaluation_environment,
+                probes=probes,
+                progress=progress,
+                facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
+            )
+        finally:
+            if progress is not None:
+                progress.close()
+        with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
+            scratch_dir = Path(scratch)
+            config_path = scratch_dir / "resolved_config.yaml"
+            config_path.write_text(OmegaConf.to_yaml(cfg, resolve=True))
+            mlflow.log_artifact(str(config_path), "config")
+            policy_path = outcome.artifact.save(scratch_dir / "policy.npz")
+            mlflow.log_artifact(str(policy_path), "policy_file")
+            mlflow.log_artifact(str(_write_q_table_csv(environment, outcome, scratch_dir / "q_table.csv")), "tables")
+            title = f"{cfg.env.id} · {cfg.variant.name} · {cfg.schedule.kind} · seed {cfg.seed}"
+            mlflow.log_artifact(str(learning_curve(outcome.history, scratch_dir / "learning_curve.png", title)), "plots")
+            pictures = policy_pictures(environment, outcome.values.q, outcome.artifact.actions, scratch_dir / "maps", "learned", visits=outcome.values.visits)
+            if exact:
+                model, solution = exact
+                pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star)
+            for picture in pictures:
+                mlflow.log_artifact(str(picture), "plots")
+            if cfg.tracking.log_model:
+                log_policy_model(policy_path, outcome.artifact)
+        status = "FINISHED"
+    except KeyboardInterrupt:
+        status = "KILLED"
+        raise
+    finally:
+        mlflow.end_run(status=status)
+        environment.close()
+        evaluation_environment.close()
+    return RunSummary(run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=uri, final_evaluation=outcome.final_evaluation, outcome=outcome)
