@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import os
 import tempfile
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -135,6 +136,9 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
     from .tracking.mlflow_sink import MlflowRecorder
     from .tracking.policy_model import log_policy_model
 
+    from .cli.console import quiet_libraries
+
+    quiet_libraries()
     uri = resolve_tracking_uri(cfg.tracking.uri)
     try:
         mlflow.set_tracking_uri(uri)
@@ -206,7 +210,9 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
             for picture in pictures:
                 mlflow.log_artifact(str(picture), "plots")
             if cfg.tracking.log_model:
-                log_policy_model(policy_path, outcome.artifact)
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")  # MLflow nags for an input example; the model metadata describes the input
+                    log_policy_model(policy_path, outcome.artifact)
         status = "FINISHED"
     except KeyboardInterrupt:
         status = "KILLED"

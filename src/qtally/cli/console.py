@@ -7,7 +7,17 @@ from typing import Mapping
 
 from tqdm import tqdm
 
-__all__ = ["TrainingProgress", "fail"]
+__all__ = ["TrainingProgress", "fail", "quiet_libraries"]
+
+
+def quiet_libraries() -> None:
+    """Keep MLflow's own progress bars and info lines out of qtally's console output."""
+    import logging
+    import os
+
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+    logging.getLogger("mlflow").setLevel(logging.WARNING)
+    logging.getLogger("alembic").setLevel(logging.WARNING)
 
 
 class TrainingProgress:

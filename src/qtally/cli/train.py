@@ -6,7 +6,7 @@ import hydra
 from omegaconf import DictConfig
 
 from ..config.schema import register_schema
-from .console import TrainingProgress, fail
+from .console import TrainingProgress, fail, quiet_libraries
 
 PROGRAM = "qtally-train"
 
@@ -33,5 +33,6 @@ def _train(cfg: DictConfig) -> None:
 
 
 def main() -> None:
+    quiet_libraries()
     register_schema()
     _train()

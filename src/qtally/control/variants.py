@@ -8,6 +8,8 @@ All take arrays and return nothing; the state lives in :class:`ActionValues`.
 - ``on_policy``: first-visit (or every-visit) control of an epsilon-soft policy.
 - ``off_policy``: weighted importance sampling with an epsilon-soft behaviour policy
   and a greedy target; the backward loop stops where the behaviour action leaves the target.
+  The target splits ties evenly among maximal actions (pi(a|s) = 1/#ties), so a fresh
+  all-zero row does not pin the target to action 0 and stop every backward loop at once.
 
 Step size: ``None`` means the sample average (1/N, or W/C for weighted IS); a number
 means a constant step. For off-policy with a constant step the update is
@@ -142,9 +144,11 @@ class OffPolicy:
                 step = w / weights_sum[s, a] if self.step_size is None else min(1.0, self.step_size * w)
                 q[s, a] += step * (g - q[s, a])
             used += 1
-            if a != int(np.argmax(q[s])):
+            row = q[s]
+            n_greedy = int(np.count_nonzero(row == row.max()))
+            if row[a] != row.max():
                 break
-            w /= float(episode.behaviour_probabilities[t])
+            w *= (1.0 / n_greedy) / float(episode.behaviour_probabilities[t])
         return used
 
 
