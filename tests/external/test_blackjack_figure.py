@@ -1,0 +1,83 @@
+"""Blackjack: the learned policy agrees with the published optimal policy.
+
+Source: Sutton, R. S. and Barto, A. G. (2018), Reinforcement Learning: An Introduction,
+2nd edition, Figure 5.2 (the optimal policy for Blackjack found by Monte Carlo ES, under
+the rules of Example 5.1, which `Blackjack-v1` with `sab=True` implements). The stick/hit
+boundaries below are read from the published figure; they were transcribed from memory
+of it, not copied from a file, and match the well-known basic strategy for these rules.
+
+Only states the learned policy visits often are compared (at least 0.2% of episodes),
+because rarely visited states carry too few returns to decide close calls. A policy
+that mimics the dealer (stick from 17) agrees on only 164 of the 200 states (82%), a
+random policy on about half: the thresholds below separate learning from either.
+"""
+
+import numpy as np
+import pytest
+
+from qtally.control.schedules import Constant
+from qtally.control.variants import make_variant
+from qtally.envs.factory import EnvironmentSpec, make_environment
+from qtally.trainer import TrainingSettings, train
+
+STICK, HIT = 0, 1
+
+
+def figure_5_2_action(player_sum: int, dealer_card: int, usable_ace: int) -> int:
+    """The published optimal action (dealer_card 1 is an ace)."""
+    if usable_ace:
+        if player_sum >= 19:
+            return STICK
+        if player_sum == 18:
+            return STICK if 2 <= dealer_card <= 8 else HIT
+        return HIT
+    if player_sum >= 17:
+        return STICK
+    if 13 <= player_sum <= 16:
+        return STICK if 2 <= dealer_card <= 6 else HIT
+    if player_sum == 12:
+        return STICK if 4 <= dealer_card <= 6 else HIT
+    return HIT
+
+
+def _agreement(environment, outcome, episodes: int, min_share: float) -> tuple[float, int]:
+    visits = outcome.values.visits.sum(axis=1)
+    agree = total = 0
+    for p in range(12, 22):
+        for d in range(1, 11):
+            for u in (0, 1):
+                s = environment.encoder.encode((p, d, u))
+                if visits[s] < min_share * episodes:
+                    continue
+                total += 1
+                agree += int(outcome.artifact.actions[s] == figure_5_2_action(p, d, u))
+    return agree / total, total
+
+
+def test_dealer_mimic_baseline_disagrees_enough():
+    mimic = [(p, d, u) for p in range(12, 22) for d in range(1, 11) for u in (0, 1)]
+    agree = sum((STICK if p >= 17 else HIT) == figure_5_2_action(p, d, u) for p, d, u in mimic)
+    assert agree == 164
+
+
+@pytest.mark.parametrize(
+    "variant, epsilon, episodes, required",
+    [
+        # Exploring starts: measured 0.985 agreement on all 200 states at this seed.
+        ("exploring_starts", 0.0, 200_000, 0.95),
+        # On-policy learns the best epsilon-soft policy (epsilon 0.1), which differs from
+        # the optimum on a few close calls: measured 0.956 on the often-visited states.
+        ("on_policy", 0.1, 200_000, 0.90),
+    ],
+)
+def test_learned_policy_matches_figure_5_2(variant, epsilon, episodes, required):
+    environment = make_environment(EnvironmentSpec(id="Blackjack-v1", kwargs={"sab": True}))
+    outcome = train(
+        environment,
+        make_variant(variant, 1.0, True, None),
+        Constant(epsilon),
+        TrainingSettings(episodes=episodes, seed=0, log_every=10_000, eval_every=0, eval_episodes=10),
+    )
+    agreement, compared = _agreement(environment, outcome, episodes, min_share=0.002)
+    assert compared >= 100
+    assert agreement >= required, f"{variant}: {agreement:.3f} agreement on {compared} states"

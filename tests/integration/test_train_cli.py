@@ -1,0 +1,74 @@
+"""`qtally-train` end to end through the command line, then the run read back with the MLflow client."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from mlflow.tracking import MlflowClient
+
+import mlflow
+
+
+def _only_run(tmp_path):
+    client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / 'mlflow.db'}")
+    experiment = client.get_experiment_by_name("qtally")
+    runs = client.search_runs([experiment.experiment_id])
+    assert len(runs) == 1
+    return client, runs[0]
+
+
+def _artifact_paths(client, run_id, path=None):
+    found = []
+    for item in client.list_artifacts(run_id, path):
+        found.extend(_artifact_paths(client, run_id, item.path) if item.is_dir else [item.path])
+    return found
+
+
+def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
+    result = run_cli("qtally-train", "env=frozen_lake_4x4", "variant=on_policy", "episodes=600", "eval_every=300", "eval_episodes=50", "snapshot_every=300", "log_every=50", "seed=5", check=True)
+    client, run = _only_run(tmp_path)
+    run_id = run.info.run_id
+    assert run_id in result.stdout and "mlflow ui --backend-store-uri sqlite:///mlflow.db" in result.stdout
+    assert run.info.status == "FINISHED"
+    # Params: the flattened resolved config.
+    assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
+    assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.epsilon"] == "0.1"
+    # Tags.
+    assert {k: run.data.tags[k] for k in ("env", "variant", "schedule", "seed")} == {"env": "FrozenLake-v1", "variant": "on_policy", "schedule": "constant", "seed": "5"}
+    # Metrics, with the episode number as step.
+    steps = [m.step for m in client.get_metric_history(run_id, "return_mean")]
+    assert steps == list(range(50, 601, 50))
+    evaluations = client.get_metric_history(run_id, "eval_return_mean")
+    assert [m.step for m in evaluations] == [300, 600]
+    assert all(0.0 <= m.value <= 1.0 for m in evaluations)
+    for name in ("eval_return_ci95", "coverage_sa", "epsilon", "optimality_gap", "optimal_action_fraction"):
+        assert client.get_metric_history(run_id, name), name
+    # Artifacts.
+    paths = set(_artifact_paths(client, run_id))
+    for expected in ("config/resolved_config.yaml", "policy_file/policy.npz", "tables/q_table.csv", "plots/learning_curve.png", "plots/learned_policy_map.png", "plots/optimal_policy_map.png", "snapshots/policy-000000300.npz"):
+        assert expected in paths, (expected, sorted(paths))
+    # The pyfunc model predicts the saved greedy actions for numpy, list and DataFrame input.
+    from qtally.policy.artifact import load_policy
+
+    local = mlflow.artifacts.download_artifacts(run_id=run_id, artifact_path="policy_file/policy.npz", tracking_uri=f"sqlite:///{tmp_path / 'mlflow.db'}", dst_path=str(tmp_path / "dl"))
+    actions = load_policy(local).actions
+    mlflow.set_tracking_uri(f"sqlite:///{tmp_path / 'mlflow.db'}")
+    model = mlflow.pyfunc.load_model(f"runs:/{run_id}/policy")
+    states = np.arange(16).reshape(-1, 1)
+    np.testing.assert_array_equal(model.predict(states), actions)
+    np.testing.assert_array_equal(model.predict(states.tolist()), actions)
+    np.testing.assert_array_equal(model.predict(pd.DataFrame({"state": np.arange(16)})), actions)
+
+
+def test_blackjack_model_takes_observation_parts_as_columns(run_cli, tmp_path):
+    run_cli("qtally-train", "env=blackjack", "variant=exploring_starts", "episodes=3000", "eval_episodes=20", "gamma=1.0", check=True)
+    client, run = _only_run(tmp_path)
+    mlflow.set_tracking_uri(f"sqlite:///{tmp_path / 'mlflow.db'}")
+    info = mlflow.models.get_model_info(f"runs:/{run.info.run_id}/policy")
+    assert info.metadata["observation_columns"] == ["player_sum", "dealer_card", "usable_ace"]
+    model = mlflow.pyfunc.load_model(f"runs:/{run.info.run_id}/policy")
+    frame = pd.DataFrame({"player_sum": [21, 20, 5], "dealer_card": [10, 1, 7], "usable_ace": [0, 1, 0]})
+    actions = model.predict(frame)
+    assert actions.shape == (3,) and set(actions.tolist()) <= {0, 1}
+    np.testing.assert_array_equal(model.predict(frame.to_numpy().tolist()), actions)
+    with pytest.raises(Exception, match="3 column"):
+        model.predict(np.array([[1, 2]]))
