@@ -22,6 +22,12 @@ def _train(cfg: DictConfig) -> None:
         fail(PROGRAM, str(exc))
     except KeyboardInterrupt:
         fail(PROGRAM, "interrupted; the run was closed as KILLED", code=130)
+    except Exception as exc:  # unexpected: one line by default, the traceback on request
+        import os
+
+        if os.environ.get("QTALLY_DEBUG"):
+            raise
+        fail(PROGRAM, f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
     if not cfg.quiet:
         evaluation = summary.final_evaluation
         line = f"eval_return_mean={evaluation.get('eval_return_mean', float('nan')):.4g} ± {evaluation.get('eval_return_ci95', float('nan')):.3g}"
