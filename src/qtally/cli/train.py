@@ -28,7 +28,9 @@ def _train(cfg: DictConfig) -> None:
         if os.environ.get("QTALLY_DEBUG"):
             raise
         fail(PROGRAM, f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
-    if not cfg.quiet:
+    if cfg.quiet:
+        print(summary.run_id)  # quiet: the run id alone, for scripts (RUN=$(qtally-train quiet=true))
+    else:
         evaluation = summary.final_evaluation
         line = f"eval_return_mean={evaluation.get('eval_return_mean', float('nan')):.4g} ± {evaluation.get('eval_return_ci95', float('nan')):.3g}"
         if "optimality_gap" in evaluation:

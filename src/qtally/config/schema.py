@@ -62,7 +62,7 @@ class TrainConfig:
     schedule: ScheduleConfig = MISSING
     tracking: TrackingConfig = field(default_factory=TrackingConfig)
     episodes: int = 5000
-    gamma: float = 1.0
+    gamma: float = 0.99
     seed: int = 0
     log_every: int = 100
     eval_every: int = 1000

@@ -54,6 +54,8 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
     if name == "RestockEnv":
         encoder = environment.encoder
         sizes = encoder.sizes
+        if len(sizes) < 2:
+            return []  # shelf life 1: the observation is (day,) alone, there is no stock axis to map
         days = list(range(sizes[0] - 1))
         stock = list(range(sizes[1]))
         panels = [0] if len(sizes) < 3 else [0, sizes[2] - 1]
