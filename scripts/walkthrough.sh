@@ -7,6 +7,7 @@
 # Every figure in the scenario is invented. The store is sqlite:///mlflow.db here unless
 # MLFLOW_TRACKING_URI says otherwise.
 set -euo pipefail
+export MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR=false
 
 EPISODES="${WALKTHROUGH_EPISODES:-15000}"
 EVAL_EPISODES="${WALKTHROUGH_EVAL_EPISODES:-200}"

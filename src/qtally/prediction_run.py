@@ -10,14 +10,19 @@ FAILED/KILLED if anything goes wrong on the way.
 Where the environment exposes its model, each estimate is put beside the exact value of
 the same target policy (:func:`qtally.evaluate.exact.policy_evaluation`, and
 :func:`~qtally.evaluate.exact.q_from_v` for Q) and its error is expressed in standard
-errors. The model ignores time limits; an episode cut by one is handled as
-``env.truncation`` says (``bootstrap`` seeds the cut with the current estimate).
+errors. ``err/se`` is infinite where every sampled return was the same (standard error 0)
+yet the exact value differs: too few visits to have seen the rarer outcomes, which the
+summary metric ``max_error_in_se`` then shows rather than hides. The model ignores time
+limits; an episode cut by one is handled as ``env.truncation`` says (``bootstrap`` seeds
+the cut with the current estimate).
 """
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import math
+import os
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -148,10 +153,25 @@ def _from_policy_file(path: str | Path, environment: TabularEnvironment, what: s
     return deterministic_policy(artifact.actions, environment.n_actions)
 
 
+@contextlib.contextmanager
+def _quiet_mlflow():
+    """No artifact download progress bars on the user's terminal while fetching a policy."""
+    name = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
+    before = os.environ.get(name)
+    os.environ[name] = "false"
+    try:
+        yield
+    finally:
+        if before is None:
+            os.environ.pop(name, None)
+        else:
+            os.environ[name] = before
+
+
 def _from_run(run_id: str, environment: TabularEnvironment, key: str) -> np.ndarray:
     import mlflow
 
-    with tempfile.TemporaryDirectory(prefix="qtally-policy-") as scratch:
+    with tempfile.TemporaryDirectory(prefix="qtally-policy-") as scratch, _quiet_mlflow():
         try:
             local = mlflow.artifacts.download_artifacts(run_id=run_id, artifact_path="policy_file/policy.npz", dst_path=scratch)
         except Exception as exc:  # unknown run, no such artifact, unreachable store
@@ -164,7 +184,8 @@ def _from_model(uri: str, environment: TabularEnvironment, key: str) -> np.ndarr
     import mlflow
 
     try:
-        model = mlflow.pyfunc.load_model(uri)
+        with _quiet_mlflow():
+            model = mlflow.pyfunc.load_model(uri)
     except Exception as exc:
         raise QtallyError(f"{key}.uri={uri!r}: cannot load the model ({_first_line(exc)})") from None
     encoder = environment.encoder
@@ -172,7 +193,8 @@ def _from_model(uri: str, environment: TabularEnvironment, key: str) -> np.ndarr
     dtype = np.float64 if encoder.spec().get("kind") == "bins" else np.int64
     batch = np.asarray(observations, dtype=dtype).reshape(environment.n_states, encoder.width)
     try:
-        actions = np.asarray(model.predict(batch)).reshape(-1).astype(np.int64)
+        with _quiet_mlflow():
+            actions = np.asarray(model.predict(batch)).reshape(-1).astype(np.int64)
     except Exception as exc:
         raise QtallyError(f"{key}.uri={uri!r}: the model cannot act on this environment's observations ({_first_line(exc)})") from None
     if actions.shape != (environment.n_states,) or actions.min() < 0 or actions.max() >= environment.n_actions:
@@ -428,7 +450,10 @@ def prediction_report(
                     error_in_se=float(in_se[entry]),
                 )
             )
-        counted = (visits >= max(min_visits, 1)) & np.isfinite(value)
+        # Weighted IS: a visit whose ratio is 0 carries no information, so the threshold
+        # applies to the effective number of visits there.
+        enough = effective if method == "weighted" else visits
+        counted = (enough >= max(min_visits, 1)) & np.isfinite(value)
         prefix = f"{kind}_{method}_"
         metrics[prefix + "entries_estimated"] = float(counted.sum())
         compared = counted & np.isfinite(truth) & np.isfinite(se)
@@ -468,9 +493,14 @@ def _write_csv(rows: list[ReportRow], path: Path) -> Path:
     return path
 
 
+def _enough(row: ReportRow, min_visits: int) -> bool:
+    count = row.effective_visits if row.method == "weighted" else row.visits
+    return count >= max(min_visits, 1) and math.isfinite(row.estimate)
+
+
 def shown_rows(rows: list[ReportRow], min_visits: int, has_exact: bool, limit: int = TABLE_ROWS) -> list[ReportRow]:
     """The rows worth printing: the worst errors when exact values exist, else the most visited."""
-    eligible = [r for r in rows if r.visits >= max(min_visits, 1) and math.isfinite(r.estimate)]
+    eligible = [r for r in rows if _enough(r, min_visits)]
     if has_exact:
         eligible = [r for r in eligible if math.isfinite(r.exact)]
         eligible.sort(key=lambda r: (-abs(r.error), -r.error_in_se if math.isfinite(r.error_in_se) else -math.inf))
@@ -483,7 +513,7 @@ def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
     """The compact table printed on standard output, then the summary line."""
     plan = summary.plan
     has_exact = plan.exact_v is not None
-    eligible = sum(1 for r in summary.rows if r.visits >= max(summary.min_visits, 1) and math.isfinite(r.estimate))
+    eligible = sum(1 for r in summary.rows if _enough(r, summary.min_visits))
     shown = shown_rows(summary.rows, summary.min_visits, has_exact, limit)
     playing = "on-policy" if plan.behaviour is None else f"off-policy from behaviour [{plan.behaviour.label}]"
     lines = [
@@ -491,18 +521,24 @@ def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
         f"{'first' if summary.first_visit else 'every'}-visit, {playing}"
     ]
     width = max([len(r.observation) for r in shown] + [11])
+    off_policy = plan.behaviour is not None
     header = f"  {'kind':<4} {'method':<9} {'observation':<{width}} {'action':>6} {'estimate':>10} {'± se':>9} {'visits':>8}"
+    if off_policy:
+        header += f" {'eff.':>8}"
     if has_exact:
         header += f" {'exact':>10} {'error':>10} {'err/se':>7}"
     lines.append(header)
     for r in shown:
         action = "-" if r.action is None else str(r.action)
         line = f"  {r.kind:<4} {r.method:<9} {r.observation:<{width}} {action:>6} {r.estimate:>10.4f} {r.standard_error:>9.4f} {r.visits:>8d}"
+        if off_policy:
+            line += f" {r.effective_visits:>8.1f}"
         if has_exact:
             line += f" {r.exact:>10.4f} {r.error:>+10.4f} {r.error_in_se:>7.2f}"
         lines.append(line)
     order = "largest error first" if has_exact else "most visited first"
-    lines.append(f"  ({len(shown)} of {eligible} entries with >= {max(summary.min_visits, 1)} visits; {order})")
+    counted = "visits (effective visits for weighted IS)" if off_policy else "visits"
+    lines.append(f"  ({len(shown)} of {eligible} entries with >= {max(summary.min_visits, 1)} {counted}; {order})")
     m = summary.metrics
     facts = [f"states_estimated={int(m.get('states_estimated', 0))}"]
     for name in ("max_abs_error", "mean_abs_error", "max_error_in_se"):
@@ -538,7 +574,9 @@ def _pictures(plan: PredictionPlan, estimates: dict, directory: Path) -> list[Pa
     else:
         with np.errstate(invalid="ignore"):
             values = (plan.target.probs * q_est.value).sum(axis=1)
-    pictures = policy_pictures(env, q, actions, directory, "estimated", values=values)
+    pictures = []
+    if np.isfinite(values).any():  # nothing to draw when no state has an estimate
+        pictures += policy_pictures(env, q, actions, directory, "estimated", values=values)
     if plan.exact_v is not None:
         pictures += policy_pictures(env, plan.exact_q, actions, directory, "exact", values=plan.exact_v)
     return pictures
@@ -602,7 +640,7 @@ def run_prediction(cfg: DictConfig, progress_factory: Callable[[int], Any] | Non
             "truncated_fraction": played.truncated / max(played.episodes, 1),
             "steps": float(played.steps),
         })
-        mlflow.log_metrics({k: v for k, v in metrics.items() if math.isfinite(v)})
+        mlflow.log_metrics({k: v for k, v in metrics.items() if not math.isnan(v)})
         with tempfile.TemporaryDirectory(prefix="qtally-prediction-") as scratch:
             scratch_dir = Path(scratch)
             config_path = scratch_dir / "resolved_config.yaml"

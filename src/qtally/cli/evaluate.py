@@ -9,7 +9,7 @@ import hydra
 from omegaconf import DictConfig
 
 from ..config.evaluate_schema import register_evaluate_schema
-from .console import fail
+from .console import fail, quiet_libraries
 
 PROGRAM = "qtally-evaluate"
 
@@ -41,11 +41,29 @@ def _evaluate(cfg: DictConfig) -> None:
         fail(PROGRAM, str(exc))
     except KeyboardInterrupt:
         fail(PROGRAM, "interrupted; the run was closed as KILLED", code=130)
-    if not cfg.quiet:
+    except Exception as exc:  # unexpected: one line by default, the traceback on request
+        import os
+
+        if os.environ.get("QTALLY_DEBUG"):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        fail(PROGRAM, f"{type(exc).__name__}: {first} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
+    if cfg.quiet:
+        print(summary.run_id)  # quiet: the run id alone, for scripts
+    else:
         print(format_report(summary))
-    print(f"run {summary.run_id} finished (experiment {cfg.tracking.experiment})")
+        print(f"run {summary.run_id} finished (experiment {cfg.tracking.experiment}; table in tables/prediction.csv)")
 
 
 def main() -> None:
+    from ..config.evaluate_schema import BehaviourConfig, EvaluateConfig, PolicyConfig, StartConfig
+    from ..config.schema import EnvConfig
+    from .overrides import first_override_problem
+
+    quiet_libraries()
     register_evaluate_schema()
+    schema = EvaluateConfig(env=EnvConfig(), policy=PolicyConfig(), behaviour=BehaviourConfig(), start=StartConfig())
+    problem = first_override_problem(sys.argv[1:], schema, groups=("env",), config_file="configs/evaluate.yaml")
+    if problem:
+        fail(PROGRAM, problem)
     _evaluate()

@@ -24,7 +24,7 @@ def _values(override) -> list[Any]:
     return [override.value()]
 
 
-def first_override_problem(arguments: Sequence[str], schema: Any, groups: Sequence[str]) -> str | None:
+def first_override_problem(arguments: Sequence[str], schema: Any, groups: Sequence[str], config_file: str = "configs/train.yaml") -> str | None:
     """The first override whose key is unknown or whose value does not fit the schema, as a message."""
     from hydra.core.override_parser.overrides_parser import OverridesParser
 
@@ -45,6 +45,6 @@ def first_override_problem(arguments: Sequence[str], schema: Any, groups: Sequen
             except Exception as exc:  # OmegaConf's validation and key errors
                 reason = str(exc).splitlines()[0]
                 if reason.startswith("Key '") and " not in " in reason:
-                    return f"{key}: no such config key; see the keys in configs/train.yaml or run with --cfg job"
+                    return f"{key}: no such config key; see the keys in {config_file} or run with --cfg job"
                 return f"{key}={value!r}: {reason}"
     return None
