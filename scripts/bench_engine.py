@@ -19,31 +19,13 @@ import statistics
 import sys
 import time
 import warnings
-from importlib import resources
 
 # Episodes of one timed run at --scale 1, chosen so each run takes about a second.
 EPISODES = {"frozen_lake_4x4": 3000, "blackjack": 10000, "restock": 1000}
 VARIANTS = ("exploring_starts", "on_policy", "off_policy")
 
 
-def environment_spec(name: str):
-    """The EnvironmentSpec and truncation rule of a shipped env config (configs/env/<name>.yaml)."""
-    from omegaconf import OmegaConf
-
-    from qtally.envs.factory import EnvironmentSpec
-
-    raw = OmegaConf.to_container(OmegaConf.create((resources.files("qtally.configs") / "env" / f"{name}.yaml").read_text()))
-    spec = EnvironmentSpec(
-        id=raw["id"],
-        kwargs=raw.get("kwargs") or {},
-        max_episode_steps=raw.get("max_episode_steps"),
-        observation_names=raw.get("observation_names"),
-        bins=raw.get("bins"),
-        low=raw.get("low"),
-        high=raw.get("high"),
-    )
-    return spec, raw.get("truncation", "bootstrap")
-
+from qtally.experiment import bundled_environment_spec
 
 def total_steps(history: dict) -> float:
     """Environment steps of the run, from the window means of ``episode_length_mean``."""
@@ -73,7 +55,7 @@ def main(argv: list[str] | None = None) -> int:
     log_every = 100
     print(f"{'env':16s} {'variant':17s} {'episodes':>9s} {'seconds':>8s} {'episodes/s':>11s} {'steps/s':>10s}")
     for name, base_episodes in EPISODES.items():
-        spec, truncation = environment_spec(name)
+        spec, truncation = bundled_environment_spec(name)
         episodes = max(1, int(base_episodes * args.scale))
         for variant_name in VARIANTS:
             variant = make_variant(variant_name, 1.0, variant_name != "off_policy", None)

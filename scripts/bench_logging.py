@@ -30,31 +30,10 @@ import sys
 import tempfile
 import time
 import warnings
-from importlib import resources
 from pathlib import Path
 from typing import Mapping
 
 ENV_CHOICES = ("frozen_lake_4x4", "restock", "blackjack")
-
-
-def environment_spec(name: str):
-    """The EnvironmentSpec of a shipped env config (configs/env/<name>.yaml)."""
-    from omegaconf import OmegaConf
-
-    from qtally.envs.factory import EnvironmentSpec
-
-    text = (resources.files("qtally.configs") / "env" / f"{name}.yaml").read_text()
-    raw = OmegaConf.to_container(OmegaConf.create(text), resolve=True)
-    spec = EnvironmentSpec(
-        id=raw["id"],
-        kwargs=raw.get("kwargs") or {},
-        max_episode_steps=raw.get("max_episode_steps"),
-        observation_names=raw.get("observation_names"),
-        bins=raw.get("bins"),
-        low=raw.get("low"),
-        high=raw.get("high"),
-    )
-    return spec, raw.get("truncation", "bootstrap")
 
 
 class PerEpisodeRecorder:
@@ -76,6 +55,8 @@ class PerEpisodeRecorder:
     def flush(self) -> None:
         pass
 
+
+from qtally.experiment import bundled_environment_spec
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description="Time one training run with per-episode, batched and no MLflow logging.")
@@ -101,7 +82,7 @@ def main(argv: list[str] | None = None) -> int:
     from qtally.tracking.sink import NullRecorder
     from qtally.trainer import TrainingSettings, train
 
-    spec, truncation = environment_spec(args.env)
+    spec, truncation = bundled_environment_spec(args.env)
     gamma = 1.0
     variant = make_variant(args.variant, gamma, args.variant != "off_policy", None)
     schedule = Constant(0.1)

@@ -18,20 +18,16 @@ from pathlib import Path
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
+from .config.schema import EnvConfig
 from .config.validate import ConfigError, schedule_parameters, validate
 from .control.schedules import make_schedule
 from .control.variants import make_variant
 from .envs.factory import EnvironmentError_, EnvironmentSpec, TabularEnvironment, make_environment
+from .errors import QtallyError
+from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .trainer import TrainingOutcome, TrainingSettings, train
 
-__all__ = ["QtallyError", "RunSummary", "run_training", "resolve_tracking_uri", "environment_spec"]
-
-DEFAULT_TRACKING_URI = "sqlite:///mlflow.db"
-
-
-class QtallyError(Exception):
-    """An error the user can fix; the command line prints its one-line message."""
-
+__all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
 
 @dataclass(frozen=True)
 class RunSummary:
@@ -42,8 +38,12 @@ class RunSummary:
     outcome: TrainingOutcome
 
 
-def resolve_tracking_uri(configured: str | None) -> str:
-    return configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
+def bundled_environment_spec(name: str) -> tuple[EnvironmentSpec, str]:
+    """The spec and truncation rule of a shipped ``configs/env/<name>.yaml`` (for scripts and benchmarks)."""
+    from importlib import resources
+
+    node = OmegaConf.merge(OmegaConf.structured(EnvConfig), OmegaConf.create((resources.files("qtally.configs") / "env" / f"{name}.yaml").read_text()))
+    return environment_spec(node), node.truncation
 
 
 def environment_spec(env_cfg: DictConfig) -> EnvironmentSpec:
@@ -56,18 +56,6 @@ def environment_spec(env_cfg: DictConfig) -> EnvironmentSpec:
         low=list(env_cfg.low) if env_cfg.low else None,
         high=list(env_cfg.high) if env_cfg.high else None,
     )
-
-
-def _flatten(node, prefix: str = "") -> dict[str, str]:
-    flat: dict[str, str] = {}
-    if isinstance(node, dict):
-        if not node and prefix:
-            flat[prefix[:-1]] = "{}"
-        for key, value in node.items():
-            flat.update(_flatten(value, f"{prefix}{key}."))
-    else:
-        flat[prefix[:-1]] = str(node)
-    return flat
 
 
 def _exact_probes(environment: TabularEnvironment, gamma: float):
@@ -128,26 +116,15 @@ def prepare(cfg: DictConfig):
 def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSummary:
     """Train once and record the run; raises :class:`QtallyError` for input the user can fix."""
     variant, schedule, environment, evaluation_environment = prepare(cfg)
-    import mlflow
     from mlflow.tracking import MlflowClient
-
-    from .envs.pictures import policy_pictures
-    from .plots import learning_curve
-    from .tracking.mlflow_sink import MlflowRecorder
-    from .tracking.policy_model import log_policy_model
 
     from .cli.console import quiet_libraries
 
     quiet_libraries()
     uri = resolve_tracking_uri(cfg.tracking.uri)
-    try:
-        mlflow.set_tracking_uri(uri)
-        experiment = mlflow.set_experiment(cfg.tracking.experiment)
-    except Exception as exc:  # a bad URI or an unreachable store: say so in one line
-        raise QtallyError(f"tracking.uri={uri!r}: cannot open the MLflow store ({str(exc).splitlines()[0][:200]})") from None
+    experiment = open_experiment(uri, cfg.tracking.experiment)
     probes, exact, exact_reason = _exact_probes(environment, cfg.gamma) if cfg.exact else ((), None, "exact=false")
 
-    resolved = OmegaConf.to_container(cfg, resolve=True)
     tags = {
         "env": cfg.env.id,
         "variant": cfg.variant.name,
@@ -156,69 +133,69 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
         "qtally.exact_metrics": "yes" if exact else f"no: {exact_reason}"[:250],
     }
     client = MlflowClient()
-    run = mlflow.start_run(run_name=cfg.tracking.run_name, tags=tags)
-    run_id = run.info.run_id
-    status = "FAILED"
     try:
-        params = _flatten(resolved)
-        items = list(params.items())
-        for i in range(0, len(items), 100):
-            mlflow.log_params(dict(items[i : i + 100]))
-        if announce:
-            announce(run_id)
-        recorder = MlflowRecorder(client, run_id)
-        settings = TrainingSettings(
-            episodes=cfg.episodes,
-            seed=cfg.seed,
-            log_every=cfg.log_every,
-            eval_every=cfg.eval_every,
-            eval_episodes=cfg.eval_episodes,
-            snapshot_every=cfg.snapshot_every,
-            truncation=cfg.env.truncation,
-            initial_value=cfg.initial_value,
-        )
-        progress = progress_factory(cfg.episodes) if progress_factory else None
-        try:
-            outcome = train(
-                environment,
-                variant,
-                schedule,
-                settings,
-                recorder=recorder,
-                evaluation_environment=evaluation_environment,
-                probes=probes,
-                progress=progress,
-                facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
-            )
-        finally:
-            if progress is not None:
-                progress.close()
-        with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
-            scratch_dir = Path(scratch)
-            config_path = scratch_dir / "resolved_config.yaml"
-            config_path.write_text(OmegaConf.to_yaml(cfg, resolve=True))
-            mlflow.log_artifact(str(config_path), "config")
-            policy_path = outcome.artifact.save(scratch_dir / "policy.npz")
-            mlflow.log_artifact(str(policy_path), "policy_file")
-            mlflow.log_artifact(str(_write_q_table_csv(environment, outcome, scratch_dir / "q_table.csv")), "tables")
-            title = f"{cfg.env.id} · {cfg.variant.name} · {cfg.schedule.kind} · seed {cfg.seed}"
-            mlflow.log_artifact(str(learning_curve(outcome.history, scratch_dir / "learning_curve.png", title)), "plots")
-            pictures = policy_pictures(environment, outcome.values.q, outcome.artifact.actions, scratch_dir / "maps", "learned", visits=outcome.values.visits)
-            if exact:
-                model, solution = exact
-                pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star)
-            for picture in pictures:
-                mlflow.log_artifact(str(picture), "plots")
-            if cfg.tracking.log_model:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")  # MLflow nags for an input example; the model metadata describes the input
-                    log_policy_model(policy_path, outcome.artifact)
-        status = "FINISHED"
-    except KeyboardInterrupt:
-        status = "KILLED"
-        raise
+        with recorded_run(cfg, cfg.tracking.run_name, tags) as run_id:
+            if announce:
+                announce(run_id)
+            outcome = _train_and_record(cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory)
     finally:
-        mlflow.end_run(status=status)
         environment.close()
         evaluation_environment.close()
     return RunSummary(run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=uri, final_evaluation=outcome.final_evaluation, outcome=outcome)
+
+
+def _train_and_record(cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory) -> TrainingOutcome:
+    """Inside the open run: train with the batching recorder, then write the artifacts and the model."""
+    import mlflow
+
+    from .envs.pictures import policy_pictures
+    from .plots import learning_curve
+    from .tracking.mlflow_sink import MlflowRecorder
+    from .tracking.policy_model import log_policy_model
+
+    recorder = MlflowRecorder(client, run_id)
+    settings = TrainingSettings(
+        episodes=cfg.episodes,
+        seed=cfg.seed,
+        log_every=cfg.log_every,
+        eval_every=cfg.eval_every,
+        eval_episodes=cfg.eval_episodes,
+        snapshot_every=cfg.snapshot_every,
+        truncation=cfg.env.truncation,
+        initial_value=cfg.initial_value,
+    )
+    progress = progress_factory(cfg.episodes) if progress_factory else None
+    try:
+        outcome = train(
+            environment,
+            variant,
+            schedule,
+            settings,
+            recorder=recorder,
+            evaluation_environment=evaluation_environment,
+            probes=probes,
+            progress=progress,
+            facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
+        )
+    finally:
+        if progress is not None:
+            progress.close()
+    with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
+        scratch_dir = Path(scratch)
+        log_config(cfg, scratch_dir)
+        policy_path = outcome.artifact.save(scratch_dir / "policy.npz")
+        mlflow.log_artifact(str(policy_path), "policy_file")
+        mlflow.log_artifact(str(_write_q_table_csv(environment, outcome, scratch_dir / "q_table.csv")), "tables")
+        title = f"{cfg.env.id} · {cfg.variant.name} · {cfg.schedule.kind} · seed {cfg.seed}"
+        mlflow.log_artifact(str(learning_curve(outcome.history, scratch_dir / "learning_curve.png", title)), "plots")
+        pictures = policy_pictures(environment, outcome.values.q, outcome.artifact.actions, scratch_dir / "maps", "learned", visits=outcome.values.visits)
+        if exact:
+            model, solution = exact
+            pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star)
+        for picture in pictures:
+            mlflow.log_artifact(str(picture), "plots")
+        if cfg.tracking.log_model:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # MLflow nags for an input example; the model metadata describes the input
+                log_policy_model(policy_path, outcome.artifact)
+    return outcome

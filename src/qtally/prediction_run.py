@@ -41,7 +41,9 @@ from .evaluate.prediction import (
     check_coverage,
     play_prediction_episodes,
 )
-from .experiment import QtallyError, _flatten, environment_spec, resolve_tracking_uri
+from .errors import QtallyError
+from .experiment import environment_spec
+from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .policy.rules import (
     RULES,
     PolicyRuleError,
@@ -587,13 +589,7 @@ def run_prediction(cfg: DictConfig, progress_factory: Callable[[int], Any] | Non
     plan = prepare_prediction(cfg)
     environment = plan.environment
     try:
-        import mlflow
-
-        try:
-            mlflow.set_tracking_uri(plan.tracking_uri)
-            experiment = mlflow.set_experiment(cfg.tracking.experiment)
-        except Exception as exc:
-            raise QtallyError(f"tracking.uri={plan.tracking_uri!r}: cannot open the MLflow store ({_first_line(exc)})") from None
+        experiment = open_experiment(plan.tracking_uri, cfg.tracking.experiment)
     except BaseException:
         environment.close()
         raise
@@ -606,55 +602,44 @@ def run_prediction(cfg: DictConfig, progress_factory: Callable[[int], Any] | Non
         "seed": str(cfg.seed),
         "qtally.exact_values": "yes" if plan.exact_v is not None else f"no: {plan.exact_reason}"[:250],
     }
-    run = mlflow.start_run(run_name=cfg.tracking.run_name, tags=tags)
-    run_id = run.info.run_id
-    status = "FAILED"
+    import mlflow
+
     try:
-        params = _flatten(OmegaConf.to_container(cfg, resolve=True))
-        items = list(params.items())
-        for i in range(0, len(items), 100):
-            mlflow.log_params(dict(items[i : i + 100]))
-        if announce:
-            announce(run_id)
-        estimator = _estimator(plan, cfg)
-        playing = plan.behaviour.probs if plan.behaviour is not None else plan.target.probs
-        progress = progress_factory(cfg.episodes) if progress_factory else None
-        try:
-            played = play_prediction_episodes(
-                environment, playing, estimator, cfg.episodes, seed=cfg.seed,
-                start_observation=plan.start_observation, start_action=plan.start_action,
-                start_states=plan.start_states, random_first_action=plan.random_first_action,
-                truncation=plan.truncation, progress=progress,
-            )
-        finally:
-            if progress is not None:
-                progress.close()
-        estimates: dict[tuple[str, str], Estimates] = {}
-        for kind in plan.kinds:
-            for method in plan.methods:
-                estimates[(kind, method)] = estimator.state_values(method) if kind == "v" else estimator.action_values(method)
-        rows, metrics = prediction_report(environment, estimates, plan.exact_v, plan.exact_q, cfg.min_visits)
-        metrics.update({
-            "episodes": float(played.episodes),
-            "return_mean": played.return_mean,
-            "truncated_fraction": played.truncated / max(played.episodes, 1),
-            "steps": float(played.steps),
-        })
-        mlflow.log_metrics({k: v for k, v in metrics.items() if not math.isnan(v)})
-        with tempfile.TemporaryDirectory(prefix="qtally-prediction-") as scratch:
-            scratch_dir = Path(scratch)
-            config_path = scratch_dir / "resolved_config.yaml"
-            config_path.write_text(OmegaConf.to_yaml(cfg, resolve=True))
-            mlflow.log_artifact(str(config_path), "config")
-            mlflow.log_artifact(str(_write_csv(rows, scratch_dir / "prediction.csv")), "tables")
-            for picture in _pictures(plan, estimates, scratch_dir / "maps"):
-                mlflow.log_artifact(str(picture), "plots")
-        status = "FINISHED"
-    except KeyboardInterrupt:
-        status = "KILLED"
-        raise
+        with recorded_run(cfg, cfg.tracking.run_name, tags) as run_id:
+            if announce:
+                announce(run_id)
+            estimator = _estimator(plan, cfg)
+            playing = plan.behaviour.probs if plan.behaviour is not None else plan.target.probs
+            progress = progress_factory(cfg.episodes) if progress_factory else None
+            try:
+                played = play_prediction_episodes(
+                    environment, playing, estimator, cfg.episodes, seed=cfg.seed,
+                    start_observation=plan.start_observation, start_action=plan.start_action,
+                    start_states=plan.start_states, random_first_action=plan.random_first_action,
+                    truncation=plan.truncation, progress=progress,
+                )
+            finally:
+                if progress is not None:
+                    progress.close()
+            estimates: dict[tuple[str, str], Estimates] = {}
+            for kind in plan.kinds:
+                for method in plan.methods:
+                    estimates[(kind, method)] = estimator.state_values(method) if kind == "v" else estimator.action_values(method)
+            rows, metrics = prediction_report(environment, estimates, plan.exact_v, plan.exact_q, cfg.min_visits)
+            metrics.update({
+                "episodes": float(played.episodes),
+                "return_mean": played.return_mean,
+                "truncated_fraction": played.truncated / max(played.episodes, 1),
+                "steps": float(played.steps),
+            })
+            mlflow.log_metrics({k: v for k, v in metrics.items() if not math.isnan(v)})
+            with tempfile.TemporaryDirectory(prefix="qtally-prediction-") as scratch:
+                scratch_dir = Path(scratch)
+                log_config(cfg, scratch_dir)
+                mlflow.log_artifact(str(_write_csv(rows, scratch_dir / "prediction.csv")), "tables")
+                for picture in _pictures(plan, estimates, scratch_dir / "maps"):
+                    mlflow.log_artifact(str(picture), "plots")
     finally:
-        mlflow.end_run(status=status)
         environment.close()
     return PredictionSummary(
         run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=plan.tracking_uri, metrics=metrics,

@@ -2,36 +2,76 @@
 
 from __future__ import annotations
 
+import os
 import sys
-from typing import Mapping
+from typing import Callable, Mapping, TypeVar
 
 from tqdm import tqdm
 
-__all__ = ["TrainingProgress", "fail", "quiet_libraries"]
+T = TypeVar("T")
+
+__all__ = ["EpisodeProgress", "TrainingProgress", "PredictionProgress", "fail", "quiet_libraries", "run_reporting_errors", "pre_check_overrides"]
 
 
 def quiet_libraries() -> None:
     """Keep MLflow's own progress bars and info lines out of qtally's console output."""
     import logging
-    import os
 
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     logging.getLogger("mlflow").setLevel(logging.WARNING)
     logging.getLogger("alembic").setLevel(logging.WARNING)
 
 
-class TrainingProgress:
-    """Episodes done, rate, recent mean return and epsilon, on standard error."""
+class EpisodeProgress:
+    """Episodes done, rate, the recent mean return (and epsilon, when it applies), on standard error."""
 
-    def __init__(self, total: int, description: str = "training"):
+    def __init__(self, total: int, description: str, show_epsilon: bool):
         self.bar = tqdm(total=total, desc=description, unit="ep", dynamic_ncols=True, file=sys.stderr, mininterval=0.5)
+        self.show_epsilon = show_epsilon
 
     def update(self, episodes: int, status: Mapping[str, float]) -> None:
         self.bar.update(episodes - self.bar.n)
-        self.bar.set_postfix(ret=f"{status['return_mean']:.3g}", eps=f"{status['epsilon']:.3f}", refresh=False)
+        postfix = {"ret": f"{status['return_mean']:.3g}"}
+        if self.show_epsilon:
+            postfix["eps"] = f"{status['epsilon']:.3f}"
+        self.bar.set_postfix(postfix, refresh=False)
 
     def close(self) -> None:
         self.bar.close()
+
+
+def TrainingProgress(total: int) -> EpisodeProgress:
+    return EpisodeProgress(total, "training", show_epsilon=True)
+
+
+def PredictionProgress(total: int) -> EpisodeProgress:
+    return EpisodeProgress(total, "predicting", show_epsilon=False)
+
+
+def run_reporting_errors(program: str, action: Callable[[], T]) -> T:
+    """Run ``action``; turn user errors, interrupts and surprises into one line and an exit code."""
+    from ..errors import QtallyError
+
+    try:
+        return action()
+    except QtallyError as exc:
+        fail(program, str(exc))
+    except KeyboardInterrupt:
+        fail(program, "interrupted; the run was closed as KILLED", code=130)
+    except Exception as exc:  # unexpected: one line by default, the traceback on request
+        if os.environ.get("QTALLY_DEBUG"):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        fail(program, f"{type(exc).__name__}: {first} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
+
+
+def pre_check_overrides(program: str, schema, groups: tuple[str, ...], config_file: str) -> None:
+    """Refuse a mistyped override in one line before Hydra composes anything."""
+    from .overrides import first_override_problem
+
+    problem = first_override_problem(sys.argv[1:], schema, groups=groups, config_file=config_file)
+    if problem:
+        fail(program, problem)
 
 
 def fail(program: str, message: str, code: int = 2) -> None:

@@ -6,28 +6,17 @@ import hydra
 from omegaconf import DictConfig
 
 from ..config.schema import register_schema
-from .console import TrainingProgress, fail, quiet_libraries
+from .console import TrainingProgress, pre_check_overrides, quiet_libraries, run_reporting_errors
 
 PROGRAM = "qtally-train"
 
 
 @hydra.main(version_base="1.3", config_path="pkg://qtally.configs", config_name="train")
 def _train(cfg: DictConfig) -> None:
-    from ..experiment import QtallyError, run_training
+    from ..experiment import run_training
 
     progress = None if cfg.quiet else TrainingProgress
-    try:
-        summary = run_training(cfg, progress_factory=progress)
-    except QtallyError as exc:
-        fail(PROGRAM, str(exc))
-    except KeyboardInterrupt:
-        fail(PROGRAM, "interrupted; the run was closed as KILLED", code=130)
-    except Exception as exc:  # unexpected: one line by default, the traceback on request
-        import os
-
-        if os.environ.get("QTALLY_DEBUG"):
-            raise
-        fail(PROGRAM, f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
+    summary = run_reporting_errors(PROGRAM, lambda: run_training(cfg, progress_factory=progress))
     if cfg.quiet:
         print(summary.run_id)  # quiet: the run id alone, for scripts (RUN=$(qtally-train quiet=true))
     else:
@@ -41,15 +30,10 @@ def _train(cfg: DictConfig) -> None:
 
 
 def main() -> None:
-    import sys
-
     from ..config.schema import EnvConfig, ScheduleConfig, TrainConfig, VariantConfig
-    from .overrides import first_override_problem
 
     quiet_libraries()
     register_schema()
     schema = TrainConfig(env=EnvConfig(), variant=VariantConfig(), schedule=ScheduleConfig())
-    problem = first_override_problem(sys.argv[1:], schema, groups=("env", "variant", "schedule"))
-    if problem:
-        fail(PROGRAM, problem)
+    pre_check_overrides(PROGRAM, schema, ("env", "variant", "schedule"), "configs/train.yaml")
     _train()

@@ -1,0 +1,83 @@
+"""The life of one recorded MLflow run, shared by ``qtally-train`` and ``qtally-evaluate``.
+
+Opening the store turns any failure into one line; a run opened with
+:func:`recorded_run` always ends FINISHED, KILLED (interrupted) or FAILED, never stuck
+in RUNNING; params are the flattened resolved config, sent in chunks.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+from pathlib import Path
+from typing import Iterator, Mapping
+
+from omegaconf import DictConfig, OmegaConf
+
+from ..errors import QtallyError
+
+__all__ = ["DEFAULT_TRACKING_URI", "resolve_tracking_uri", "open_experiment", "recorded_run", "flatten_config", "log_config"]
+
+DEFAULT_TRACKING_URI = "sqlite:///mlflow.db"
+
+
+def resolve_tracking_uri(configured: str | None) -> str:
+    """``tracking.uri``, else ``$MLFLOW_TRACKING_URI``, else SQLite in the working directory."""
+    return configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
+
+
+def open_experiment(uri: str, experiment: str):
+    import mlflow
+
+    try:
+        mlflow.set_tracking_uri(uri)
+        return mlflow.set_experiment(experiment)
+    except Exception as exc:  # a bad URI or an unreachable store: say so in one line
+        first = str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__
+        raise QtallyError(f"tracking.uri={uri!r}: cannot open the MLflow store ({first})") from None
+
+
+def flatten_config(node, prefix: str = "") -> dict[str, str]:
+    """``{"env": {"id": "X"}}`` -> ``{"env.id": "X"}``; an empty mapping stays visible as ``{}``.
+
+    >>> flatten_config({"env": {"id": "X", "kwargs": {}}, "seed": 3})
+    {'env.id': 'X', 'env.kwargs': '{}', 'seed': '3'}
+    """
+    flat: dict[str, str] = {}
+    if isinstance(node, dict):
+        if not node and prefix:
+            flat[prefix[:-1]] = "{}"
+        for key, value in node.items():
+            flat.update(flatten_config(value, f"{prefix}{key}."))
+    else:
+        flat[prefix[:-1]] = str(node)
+    return flat
+
+
+@contextlib.contextmanager
+def recorded_run(cfg: DictConfig, run_name: str | None, tags: Mapping[str, str]) -> Iterator[str]:
+    """Open a run with the config as params; yield its id; close it with the right status."""
+    import mlflow
+
+    run = mlflow.start_run(run_name=run_name, tags=dict(tags))
+    status = "FAILED"
+    try:
+        items = list(flatten_config(OmegaConf.to_container(cfg, resolve=True)).items())
+        for i in range(0, len(items), 100):
+            mlflow.log_params(dict(items[i : i + 100]))
+        yield run.info.run_id
+        status = "FINISHED"
+    except KeyboardInterrupt:
+        status = "KILLED"
+        raise
+    finally:
+        mlflow.end_run(status=status)
+
+
+def log_config(cfg: DictConfig, scratch_dir: Path) -> None:
+    """The resolved config as ``config/resolved_config.yaml``."""
+    import mlflow
+
+    path = scratch_dir / "resolved_config.yaml"
+    path.write_text(OmegaConf.to_yaml(cfg, resolve=True))
+    mlflow.log_artifact(str(path), "config")
