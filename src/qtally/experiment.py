@@ -25,7 +25,7 @@ from .control.variants import make_variant
 from .envs.factory import EnvironmentError_, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
-from .trainer import TrainingOutcome, TrainingSettings, train
+from .trainer import TrainingOutcome, TrainingSettings, evaluation_seeds, train
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
 
@@ -149,6 +149,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     import mlflow
 
     from .envs.pictures import policy_pictures
+    from .envs.rollout_animation import rollout_animation
     from .plots import learning_curve
     from .tracking.mlflow_sink import MlflowRecorder
     from .tracking.policy_model import log_policy_model
@@ -194,6 +195,11 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
             pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star)
         for picture in pictures:
             mlflow.log_artifact(str(picture), "plots")
+        if cfg.rollout_animation:
+            animation, note = rollout_animation(environment.spec, outcome.artifact.actions, scratch_dir / "rollout.gif", seed=int(evaluation_seeds(cfg.seed, 1)[0]))
+            mlflow.set_tag("qtally.rollout_animation", note)
+            if animation is not None:
+                mlflow.log_artifact(str(animation), "plots")
         if cfg.tracking.log_model:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # MLflow nags for an input example; the model metadata describes the input

@@ -17,7 +17,8 @@ def test_walkthrough_runs_in_short_form(tmp_path):
     for heading in ("== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6."):
         assert heading in result.stdout
     assert "mlflow ui --backend-store-uri sqlite:///mlflow.db --host 127.0.0.1" in result.stdout
-    assert (tmp_path / "walkthrough-pictures" / "plots" / "learning_curve.png").exists()
+    for picture in ("learning_curve.png", "learned_policy_map.png", "optimal_policy_map.png", "rollout.gif"):
+        assert (tmp_path / "walkthrough-pictures" / "plots" / picture).exists(), picture
     client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / 'mlflow.db'}")
     sweep = client.get_experiment_by_name("restock-sweep")
     runs = client.search_runs([sweep.experiment_id])

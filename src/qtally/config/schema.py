@@ -70,6 +70,7 @@ class TrainConfig:
     snapshot_every: int = 0
     initial_value: float = 0.0
     exact: bool = True
+    rollout_animation: bool = True
     quiet: bool = False
 
 
