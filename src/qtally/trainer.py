@@ -9,12 +9,15 @@ exploring starts and the evaluation seeds. Same settings and seed give the same 
 table bit for bit.
 
 Time limits: an episode cut short by a time limit has no true Monte Carlo return.
-``truncation`` says what to do with it: ``bootstrap`` (default) seeds the return at the
-cut with the current greedy value of the state reached (the partial-episode bootstrap
-of Pardo et al. 2018, "Time Limits in Reinforcement Learning"); ``as_terminal`` treats
-the cut as the end (return 0 afterwards; biased, but a looping policy is punished by
-its own costs); ``discard`` drops the episode from the update (unbiased, but a policy
-that never ends an episode then never learns).
+``truncation`` says what to do with it: ``as_terminal`` (default) treats the cut as the
+end (return 0 afterwards: biased, but a policy that walks in circles is charged for every
+step it wasted, which is what breaks the loop); ``bootstrap`` seeds the return at the cut
+with the current greedy value of the state reached (the partial-episode bootstrap of
+Pardo et al. 2018, "Time Limits in Reinforcement Learning"), the better estimate once
+values are realistic, but with an optimistic table (zeros where every step costs) it
+praises loops: on CliffWalking it kept a looping policy for 5000 episodes where
+``as_terminal`` learned a short path; ``discard`` drops the episode from the update
+(unbiased, but a policy that never ends an episode then never learns).
 """
 
 from __future__ import annotations
@@ -56,7 +59,7 @@ class TrainingSettings:
     eval_every: int = 1000
     eval_episodes: int = 100
     snapshot_every: int = 0
-    truncation: str = "bootstrap"
+    truncation: str = "as_terminal"
     initial_value: float = 0.0
 
 

@@ -27,6 +27,7 @@ from qtally.trainer import TrainingSettings, train
 from support.corridor import GOAL, optimal_actions
 
 SPEC = EnvironmentSpec(id="support.corridor:Corridor", max_episode_steps=20)
+TRUNCATION = "bootstrap"  # the settings below were checked with bootstrapped cuts
 
 CASES = {
     # name: (variant, first_visit, step_size, epsilon, initial_value)
@@ -44,7 +45,7 @@ def test_variant_reaches_hand_worked_optimum(case, gamma):
     variant_name, first_visit, step_size, epsilon, initial_value = CASES[case]
     environment = make_environment(SPEC)
     variant = make_variant(variant_name, gamma, first_visit, step_size)
-    settings = TrainingSettings(episodes=10000, seed=7, eval_episodes=5, eval_every=0, initial_value=initial_value)
+    settings = TrainingSettings(episodes=10000, seed=7, eval_episodes=5, eval_every=0, initial_value=initial_value, truncation=TRUNCATION)
     outcome = train(environment, variant, Constant(epsilon), settings)
     assert outcome.artifact.actions[:GOAL].tolist() == optimal_actions(gamma)
 
@@ -55,7 +56,7 @@ def test_off_policy_estimates_the_greedy_target(gamma, q_exit, q_right):
     # once the target is optimal every counted return equals Q* exactly, and early
     # returns carry little weight: the estimate at cell 0 lands within 0.05 of max Q*.
     environment = make_environment(SPEC)
-    settings = TrainingSettings(episodes=10000, seed=3, eval_episodes=5, eval_every=0, initial_value=-20.0)
+    settings = TrainingSettings(episodes=10000, seed=3, eval_episodes=5, eval_every=0, initial_value=-20.0, truncation=TRUNCATION)
     outcome = train(environment, make_variant("off_policy", gamma, False, None), Constant(0.3), settings)
     assert outcome.values.q[0].max() == pytest.approx(max(q_exit, q_right), abs=0.05)
 

@@ -25,7 +25,7 @@ class EnvConfig:
     bins: Optional[list[int]] = None
     low: Optional[list[float]] = None
     high: Optional[list[float]] = None
-    truncation: str = "bootstrap"
+    truncation: str = "as_terminal"
 
 
 @dataclass
