@@ -46,6 +46,8 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     paths = set(_artifact_paths(client, run_id))
     for expected in ("config/resolved_config.yaml", "policy_file/policy.npz", "tables/q_table.csv", "plots/learning_curve.png", "plots/learned_policy_map.png", "plots/optimal_policy_map.png", "snapshots/policy-000000300.npz"):
         assert expected in paths, (expected, sorted(paths))
+    # Nothing in the store needs unpickling.
+    assert not list(tmp_path.rglob("*.pkl")) and not list(tmp_path.rglob("*.pickle"))
     # The pyfunc model predicts the saved greedy actions for numpy, list and DataFrame input.
     from qtally.policy.artifact import load_policy
 
