@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["epsilon_greedy_action", "greedy_action"]
+__all__ = ["epsilon_greedy_action"]
 
 
 def epsilon_greedy_action(q_row: np.ndarray, epsilon: float, rng: np.random.Generator) -> tuple[int, float]:
@@ -36,7 +36,3 @@ def epsilon_greedy_action(q_row: np.ndarray, epsilon: float, rng: np.random.Gene
     probability = epsilon / n_actions + ((1.0 - epsilon) / len(best) if action in best else 0.0)
     return action, probability
 
-
-def greedy_action(q_row: np.ndarray, rng: np.random.Generator) -> int:
-    """A maximal action, ties broken at random."""
-    return epsilon_greedy_action(q_row, 0.0, rng)[0]

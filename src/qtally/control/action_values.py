@@ -44,10 +44,18 @@ class ActionValues:
         return float(np.count_nonzero(self.visits)) / self.visits.size
 
 
-def greedy_actions(q: np.ndarray) -> np.ndarray:
-    """argmax per row, ties to the lowest action index (deterministic, reproducible).
+def greedy_actions(q: np.ndarray, atol: float = 0.0) -> np.ndarray:
+    """The lowest action index whose value is within ``atol`` of each state's best.
+
+    Deterministic and reproducible: this is the policy a Q table stands for when it is saved,
+    evaluated or compared with the optimum.
 
     >>> greedy_actions(np.array([[0.0, 1.0], [2.0, 2.0]]))
     array([1, 0])
+    >>> greedy_actions(np.array([[1.0, 2.0, 2.0], [0.0, 0.0, -1.0]]), atol=1.5).tolist()
+    [0, 0]
     """
-    return np.argmax(q, axis=1)
+    q = np.asarray(q, dtype=float)
+    if atol == 0.0:
+        return np.argmax(q, axis=1)
+    return np.argmax(q >= q.max(axis=1, keepdims=True) - atol, axis=1)

@@ -26,6 +26,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order
 from scipy.sparse.linalg import spsolve
 
+from qtally.control.action_values import greedy_actions
 from qtally.envs.model import TabularModel
 
 __all__ = [
@@ -60,16 +61,6 @@ class NotConvergedError(RuntimeError):
 
 
 # ---------------------------------------------------------------- policy arrays
-
-
-def greedy_actions(q: np.ndarray, atol: float = 0.0) -> np.ndarray:
-    """The lowest action index whose value is within ``atol`` of each state's best.
-
-    >>> greedy_actions(np.array([[1.0, 2.0, 2.0], [0.0, 0.0, -1.0]])).tolist()
-    [1, 0]
-    """
-    q = np.asarray(q, dtype=float)
-    return np.argmax(q >= q.max(axis=1, keepdims=True) - atol, axis=1)
 
 
 def optimal_actions_mask(q_star: np.ndarray, atol: float = 1e-8) -> np.ndarray:
