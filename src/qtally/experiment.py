@@ -22,7 +22,7 @@ from .config.schema import EnvConfig
 from .config.validate import ConfigError, schedule_parameters, validate
 from .control.schedules import make_schedule
 from .control.variants import make_variant
-from .envs.factory import EnvironmentError_, EnvironmentSpec, TabularEnvironment, make_environment
+from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .trainer import TrainingOutcome, TrainingSettings, evaluation_seeds, train
@@ -101,7 +101,7 @@ def prepare(cfg: DictConfig):
     try:
         environment = make_environment(spec)
         evaluation_environment = make_environment(spec)
-    except EnvironmentError_ as exc:
+    except EnvironmentConfigError as exc:
         raise QtallyError(str(exc)) from None
     if variant.needs_start_control and environment.start_control is None:
         environment.close()

@@ -32,7 +32,7 @@ import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
 from .envs.encoders import EncoderError
-from .envs.factory import EnvironmentError_, TabularEnvironment, make_environment
+from .envs.factory import EnvironmentConfigError, TabularEnvironment, make_environment
 from .evaluate.prediction import (
     Estimates,
     ImportanceSamplingPrediction,
@@ -360,7 +360,7 @@ def prepare_prediction(cfg: DictConfig) -> PredictionPlan:
             raise QtallyError(f"tracking.uri={uri!r}: cannot open the MLflow store ({_first_line(exc)})") from None
     try:
         environment = make_environment(environment_spec(cfg.env))
-    except EnvironmentError_ as exc:
+    except EnvironmentConfigError as exc:
         raise QtallyError(str(exc)) from None
     try:
         target = policy_table(cfg.policy, environment, "policy")

@@ -19,10 +19,10 @@ from .encoders import Encoder, EncoderError, encoder_for_space
 from .start_adapters import start_control_for
 from .start_control import StartControl
 
-__all__ = ["EnvironmentError_", "TabularEnvironment", "make_environment", "EnvironmentSpec"]
+__all__ = ["EnvironmentConfigError", "TabularEnvironment", "make_environment", "EnvironmentSpec"]
 
 
-class EnvironmentError_(ValueError):
+class EnvironmentConfigError(ValueError):
     """The configured environment cannot be made or cannot be learned with a table."""
 
 
@@ -68,14 +68,14 @@ def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
         try:
             module = importlib.import_module(module_name)
         except ImportError as exc:
-            raise EnvironmentError_(f"env.id={spec.id!r}: cannot import module {module_name!r} ({exc}); check the entry point 'module:Class'") from None
+            raise EnvironmentConfigError(f"env.id={spec.id!r}: cannot import module {module_name!r} ({exc}); check the entry point 'module:Class'") from None
         cls = getattr(module, class_name, None)
         if cls is None:
-            raise EnvironmentError_(f"env.id={spec.id!r}: module {module_name!r} has no {class_name!r}; check the entry point 'module:Class'")
+            raise EnvironmentConfigError(f"env.id={spec.id!r}: module {module_name!r} has no {class_name!r}; check the entry point 'module:Class'")
         try:
             env = cls(**kwargs)
         except TypeError as exc:
-            raise EnvironmentError_(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+            raise EnvironmentConfigError(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
         if spec.max_episode_steps:
             env = TimeLimit(env, max_episode_steps=int(spec.max_episode_steps))
         return env
@@ -87,9 +87,9 @@ def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
         return gym.make(spec.id, disable_env_checker=True, **extra, **kwargs)
     except gym.error.Error as exc:
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise EnvironmentError_(f"env.id={spec.id!r} is not a registered Gymnasium environment ({message}); use a registered id or a 'module:Class' entry point") from None
+        raise EnvironmentConfigError(f"env.id={spec.id!r} is not a registered Gymnasium environment ({message}); use a registered id or a 'module:Class' entry point") from None
     except TypeError as exc:
-        raise EnvironmentError_(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+        raise EnvironmentConfigError(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
 
 
 def make_environment(spec: EnvironmentSpec, render_mode: str | None = None) -> TabularEnvironment:
@@ -97,7 +97,7 @@ def make_environment(spec: EnvironmentSpec, render_mode: str | None = None) -> T
     env = _construct(spec, render_mode)
     if not isinstance(env.action_space, spaces.Discrete):
         env.close()
-        raise EnvironmentError_(
+        raise EnvironmentConfigError(
             f"env.id={spec.id!r} has a {type(env.action_space).__name__} action space; tabular control needs Discrete actions"
         )
     names = spec.observation_names or getattr(env.unwrapped, "observation_names", None)
@@ -105,7 +105,7 @@ def make_environment(spec: EnvironmentSpec, render_mode: str | None = None) -> T
         encoder = encoder_for_space(env.observation_space, names=names, bins=spec.bins, low=spec.low, high=spec.high)
     except EncoderError as exc:
         env.close()
-        raise EnvironmentError_(f"env.id={spec.id!r}: {exc}") from None
+        raise EnvironmentConfigError(f"env.id={spec.id!r}: {exc}") from None
     return TabularEnvironment(
         env=env,
         encoder=encoder,
