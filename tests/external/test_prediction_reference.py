@@ -166,8 +166,8 @@ def test_blackjack_stick_on_twenty_values_have_the_published_signs():
     # Pattern read from the published figure (Sutton & Barto 2018, Figure 5.1): the value of
     # "stick only on 20 or 21" is below zero for player sums 12..19 and above zero for 20
     # and 21, against every dealer card, with and without a usable ace. Starts are spread
-    # uniformly over the 200 decision states (exploring-style chosen starts), 40k episodes,
-    # so each state gets ~200 first visits plus those reached by hitting; the sign is
+    # uniformly over the 280 decision states (exploring-style chosen starts), 40k episodes,
+    # so each state gets ~143 first visits plus those reached by hitting; the sign is
     # checked wherever the estimate is more than 3 standard errors from zero.
     env = make_environment(EnvironmentSpec(id="Blackjack-v1", kwargs={"sab": True}, observation_names=["player_sum", "dealer_card", "usable_ace"]))
     policy = threshold_policy(env.encoder, env.n_actions, "player_sum", 20, low_action=1, high_action=0)

@@ -19,11 +19,7 @@ import numpy as np
 
 from .start_control import StartControl
 
-__all__ = ["start_control_for", "BLACKJACK_START_SUMS"]
-
-# Player sums an exploring start may pick in Blackjack: below 12 hitting can never bust,
-# so those states carry no decision (the convention of Sutton & Barto 2018, Example 5.3).
-BLACKJACK_START_SUMS = range(12, 22)
+__all__ = ["start_control_for", "blackjack_start_states", "blackjack_start_hand"]
 
 
 class _DelegatingStart:
@@ -59,6 +55,54 @@ class _GridStart:
         return int(observation), info
 
 
+def blackjack_start_states() -> list[tuple[int, int, int]]:
+    """Every observation at which a Blackjack player acts: ``(player_sum, dealer_card, usable_ace)``.
+
+    Hard sums 4..21 (4 is the lowest two-card hand, 2 + 2) and soft sums 12..21 (an ace
+    counted as 11 makes at least 12), against each dealer card 1..10. Sums below 12 carry a
+    decision too: the game lets the player stick there, and a table that never saw them
+    would act on its initial values. The textbook's exploring starts skip them (Sutton &
+    Barto 2018, Example 5.3) only because hitting is plainly right there; a learner must
+    find that out, so every state the game can reach is a start.
+
+    >>> starts = blackjack_start_states()
+    >>> len(starts), starts[0], (21, 10, 1) in starts, (11, 1, 1) in starts
+    (280, (4, 1, 0), True, False)
+    """
+    hard = [(p, d, 0) for p in range(4, 22) for d in range(1, 11)]
+    soft = [(p, d, 1) for p in range(12, 22) for d in range(1, 11)]
+    return hard + soft
+
+
+def blackjack_start_hand(player_sum: int, usable_ace: int) -> list[int]:
+    """A hand of cards (1 = ace, 10 = ten or face) with this sum and ace status.
+
+    Wherever two cards can make the observation, the hand has two cards, as a fresh deal
+    has: the start is then a hand the game's own deal produces. So a soft 21 is the natural
+    ``[1, 10]``, which under ``sab=True`` wins unless the dealer also has one; that is what
+    every soft 21 seen at the start of a real episode is. (A soft 21 reached by hitting,
+    like ``[1, 5, 5]``, only draws when the dealer makes 21; both stick, so the policy is
+    the same either way, and only the start-state estimate of Q(21, d, 1) leans on the
+    choice.) Hard 21 cannot be dealt in two cards, so it is ``[10, 9, 2]``, as by hitting.
+    Other hard hands never hold an ace, whose future depends only on the sum.
+
+    >>> [blackjack_start_hand(p, 0) for p in (4, 11, 12, 20, 21)]
+    [[2, 2], [9, 2], [10, 2], [10, 10], [10, 9, 2]]
+    >>> [blackjack_start_hand(p, 1) for p in (12, 16, 21)]
+    [[1, 1], [1, 5], [1, 10]]
+    """
+    if usable_ace:
+        if not 12 <= player_sum <= 21:
+            raise ValueError(f"a usable ace makes a sum of 12..21, got {player_sum}")
+        return [1, player_sum - 11]
+    if not 4 <= player_sum <= 21:
+        raise ValueError(f"a hand without a usable ace sums to 4..21 before it busts, got {player_sum}")
+    if player_sum == 21:
+        return [10, 9, 2]
+    high = min(10, player_sum - 2)
+    return [high, player_sum - high]
+
+
 class _BlackjackStart:
     """Deal the player a hand with the chosen sum and ace status; the dealer's hidden card is drawn."""
 
@@ -67,20 +111,20 @@ class _BlackjackStart:
         self.core = env.unwrapped
 
     def start_states(self) -> Sequence[tuple[int, int, int]]:
-        return [(p, d, u) for p in BLACKJACK_START_SUMS for d in range(1, 11) for u in (0, 1)]
+        return blackjack_start_states()
 
     def reset_to(self, observation: Any) -> tuple[tuple[int, int, int], dict]:
         from gymnasium.envs.toy_text.blackjack import draw_card
 
         player_sum, dealer_card, usable_ace = (int(v) for v in observation)
+        if not 1 <= dealer_card <= 10:
+            raise ValueError(f"the dealer's card is 1..10 (1 is an ace), got {dealer_card}")
+        hand = blackjack_start_hand(player_sum, usable_ace)
         _, info = self.env.reset()
-        if usable_ace:
-            self.core.player = [1, player_sum - 11]
-        elif player_sum <= 20:
-            self.core.player = [10, player_sum - 10]
-        else:
-            self.core.player = [10, 9, 2]
+        self.core.player = hand
         self.core.dealer = [dealer_card, draw_card(self.core.np_random)]
+        # Keep the rendered face-up card in step with the dealer's card (the suit stays as dealt).
+        self.core.dealer_top_card_value_str = "A" if dealer_card == 1 else ("K" if dealer_card == 10 else str(dealer_card))
         return self.core._get_obs(), info
 
 
