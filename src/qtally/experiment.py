@@ -25,7 +25,8 @@ from .control.variants import make_variant
 from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
-from .trainer import TrainingOutcome, TrainingSettings, evaluation_seeds, train
+from .control.streams import RandomStreams, evaluation_seeds
+from .trainer import TrainingOutcome, TrainingSettings, train
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
 
@@ -74,7 +75,11 @@ def _exact_probes(environment: TabularEnvironment, gamma: float):
 
     def probe(q: np.ndarray) -> dict[str, float]:
         gap = optimality_gap(model, q, gamma, v_star=solution.v_star)
-        return {"optimality_gap": float(gap.gap), "optimal_action_fraction": float(optimal_action_fraction(model, q, solution.q_star))}
+        return {
+            "optimality_gap": float(gap.gap),
+            "greedy_expected_return": float(gap.greedy_start_value),
+            "optimal_action_fraction": float(optimal_action_fraction(model, q, solution.q_star)),
+        }
 
     return (probe,), (model, solution), None
 
@@ -164,6 +169,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         snapshot_every=cfg.snapshot_every,
         truncation=cfg.env.truncation,
         initial_value=cfg.initial_value,
+        step_cap=cfg.env.step_cap,
     )
     progress = progress_factory(cfg.episodes) if progress_factory else None
     try:
@@ -196,7 +202,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         for picture in pictures:
             mlflow.log_artifact(str(picture), "plots")
         if cfg.rollout_animation:
-            animation, note = rollout_animation(environment.spec, outcome.artifact.actions, scratch_dir / "rollout.gif", seed=int(evaluation_seeds(cfg.seed, 1)[0]))
+            animation, note = rollout_animation(environment.spec, outcome.artifact.actions, scratch_dir / "rollout.gif", seed=int(evaluation_seeds(RandomStreams(cfg.seed).evaluation_base, 1)[0]))
             mlflow.set_tag("qtally.rollout_animation", note)
             if animation is not None:
                 mlflow.log_artifact(str(animation), "plots")

@@ -1,23 +1,19 @@
 """The training loop: play episodes, update the Q table, measure, and write to a sink.
 
-This module wires the core (:mod:`qtally.control`) to an episode engine and a
-:class:`~qtally.tracking.sink.Recorder`; it imports neither MLflow nor Hydra.
+This module wires the core (:mod:`qtally.control`) to the episode source
+(:mod:`qtally.engine.episodes`) and a :class:`~qtally.tracking.sink.Recorder`; it imports
+neither MLflow nor Hydra. Everything the loop knows lives in one
+:class:`~qtally.control.trainer_state.TrainerState`, which can be saved and restored.
 
-Random streams: ``seed`` is split by :class:`numpy.random.SeedSequence` into
-independent streams for the training environment, the behaviour policy, the choice of
-exploring starts and the evaluation seeds. Same settings and seed give the same Q
-table bit for bit.
+Random streams (:mod:`qtally.control.streams`): ``seed`` is split into independent streams
+for the training environment, the acting policy (one uniform per decision), exploring
+starts and the evaluation seeds. Evaluation plays on a private environment of its own,
+so how often a run evaluates never changes its Q table. Same settings and seed give the
+same Q table bit for bit.
 
-Time limits: an episode cut short by a time limit has no true Monte Carlo return.
-``truncation`` says what to do with it: ``as_terminal`` (default) treats the cut as the
-end (return 0 afterwards: biased, but a policy that walks in circles is charged for every
-step it wasted, which is what breaks the loop); ``bootstrap`` seeds the return at the cut
-with the current greedy value of the state reached (the partial-episode bootstrap of
-Pardo et al. 2018, "Time Limits in Reinforcement Learning"), the better estimate once
-values are realistic, but with an optimistic table (zeros where every step costs) it
-praises loops: on CliffWalking it kept a looping policy for 5000 episodes where
-``as_terminal`` learned a short path; ``discard`` drops the episode from the update
-(unbiased, but a policy that never ends an episode then never learns).
+Time limits and the step cap: see :mod:`qtally.control.truncation`. A bootstrapped tail
+is the value of the state reached *under the policy the variant learns* (the epsilon-soft
+policy for on-policy control, the greedy one otherwise).
 """
 
 from __future__ import annotations
@@ -29,18 +25,18 @@ from typing import Callable, Mapping, Protocol
 
 import numpy as np
 
-from .control.acting import epsilon_greedy_action
-from .control.action_values import ActionValues, greedy_actions
-from .control.variants import EpisodeArrays
-from .engine.gym_loop import play_episode
-from .envs.factory import TabularEnvironment
+from .control.action_values import ActionValues
+from .control.streams import evaluation_seeds
+from .control.trainer_state import LogWindow, TrainerState
+from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
+from .engine.episodes import GymEpisodes
+from .envs.factory import TabularEnvironment, make_environment
 from .evaluate.rollouts import greedy_rollout_returns, summarise_returns
 from .policy.artifact import PolicyArtifact
+from .policy.table_policy import epsilon_greedy_decision, greedy_actions
 from .tracking.sink import NullRecorder, Recorder
 
-__all__ = ["TrainingSettings", "TrainingOutcome", "train", "TRUNCATION_CHOICES", "ProgressSink"]
-
-TRUNCATION_CHOICES = ("bootstrap", "as_terminal", "discard")
+__all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATION_CHOICES", "ProgressSink"]
 
 # A probe turns the current Q table into extra metrics at each evaluation
 # (for example the exact optimality gap where the environment has a model).
@@ -61,6 +57,7 @@ class TrainingSettings:
     snapshot_every: int = 0
     truncation: str = "as_terminal"
     initial_value: float = 0.0
+    step_cap: int | None = None  # None: derived from the table size (control/truncation.py)
 
 
 @dataclass
@@ -69,52 +66,166 @@ class TrainingOutcome:
     artifact: PolicyArtifact
     history: dict[str, list[tuple[int, float]]] = field(default_factory=dict)
     final_evaluation: dict[str, float] = field(default_factory=dict)
+    capped_episodes: int = 0
+    step_cap: int = 0
 
 
-@dataclass
-class _Window:
-    """Running sums over one logging window: constant memory however long the window."""
+class Trainer:
+    """Monte Carlo control over one environment, from a fresh or a restored :class:`TrainerState`."""
 
-    episodes: int = 0
-    return_sum: float = 0.0
-    length_sum: int = 0
-    epsilon_sum: float = 0.0
-    truncated: int = 0
-    steps_used: int = 0
+    def __init__(
+        self,
+        environment: TabularEnvironment,
+        variant,
+        schedule,
+        settings: TrainingSettings,
+        *,
+        recorder: Recorder | None = None,
+        evaluation_environment: TabularEnvironment | None = None,
+        probes: tuple[Probe, ...] = (),
+        progress: ProgressSink | None = None,
+        facts: Mapping[str, object] | None = None,
+        state: TrainerState | None = None,
+    ):
+        check_truncation(settings.truncation)
+        self.environment = environment
+        self.variant = variant
+        self.schedule = schedule
+        self.settings = settings
+        self.recorder = recorder or NullRecorder()
+        self.probes = tuple(probes)
+        self.progress = progress
+        self.facts = dict(facts or {})
+        self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
+        self.episodes = GymEpisodes(environment, self.step_cap)
+        self._evaluation_environment = evaluation_environment
+        self.state = state or TrainerState.fresh(environment.n_states, environment.n_actions, settings.seed, settings.initial_value)
+        if self.state.values.q.shape != (environment.n_states, environment.n_actions):
+            raise ValueError(f"the trainer state holds a {self.state.values.q.shape} table; this environment needs {(environment.n_states, environment.n_actions)}")
+        if self.state.environment_rng is not None:
+            self.episodes.restore_rng_state(self.state.environment_rng)
+        elif self.state.episode == 0:
+            self.episodes.seed(self.state.streams.env_seed)
+        self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
+        self.eval_seeds = evaluation_seeds(self.state.streams.evaluation_base, settings.eval_episodes)
 
-    def add(self, total_reward: float, length: int, epsilon: float, truncated: bool, steps_used: int) -> None:
-        self.episodes += 1
-        self.return_sum += total_reward
-        self.length_sum += length
-        self.epsilon_sum += epsilon
-        self.truncated += int(truncated)
-        self.steps_used += steps_used
+    # ------------------------------------------------------------ pieces
 
-    def metrics(self) -> dict[str, float]:
-        n = max(self.episodes, 1)
-        return {
-            "return_mean": self.return_sum / n,
-            "episode_length_mean": self.length_sum / n,
-            "epsilon": self.epsilon_sum / n,
-            "truncated_fraction": self.truncated / n,
-            "update_steps_fraction": self.steps_used / max(self.length_sum, 1),
-        }
+    def snapshot(self) -> PolicyArtifact:
+        values = self.state.values
+        return PolicyArtifact.from_q(values.q, values.visits, self.environment.signature(), episode=self.state.episode, **self.facts)
 
+    def _log(self, metrics: Mapping[str, float], step: int) -> None:
+        self.recorder.log_metrics(metrics, step)
+        for name, value in metrics.items():
+            self.state.history.setdefault(name, []).append((step, float(value)))
 
-def _streams(seed: int) -> dict[str, np.random.Generator | int]:
-    env_seq, behaviour_seq, start_seq, eval_seq = np.random.SeedSequence(seed).spawn(4)
-    return {
-        "env_seed": int(env_seq.generate_state(1)[0]),
-        "behaviour": np.random.default_rng(behaviour_seq),
-        "starts": np.random.default_rng(start_seq),
-        "eval_seed": int(eval_seq.generate_state(1)[0]),
-    }
+    def evaluate(self) -> dict[str, float]:
+        """Greedy rollouts on the private evaluation environment and fixed seeds, plus every probe."""
+        if self._evaluation_environment is None:
+            self._evaluation_environment = make_environment(self.environment.spec)
+            self._owns_evaluation_environment = True
+        q = self.state.values.q
+        returns = greedy_rollout_returns(self._evaluation_environment, greedy_actions(q), self.eval_seeds, self.step_cap)
+        summary = summarise_returns(returns)
+        metrics = {"eval_return_mean": summary.mean, "eval_return_ci95": summary.ci95}
+        for probe in self.probes:
+            metrics.update(probe(q))
+        self._log(metrics, self.state.episode)
+        self.state.final_evaluation = metrics
+        return metrics
 
+    def play_and_learn(self) -> None:
+        """One episode: choose a start, play it, update the table, add it to the window."""
+        state, variant, schedule = self.state, self.variant, self.schedule
+        values = state.values
+        q, state_visits = values.q, values.state_visits
+        state.episode += 1
+        episode = state.episode
+        next_uniform = state.streams.acting.next
+        epsilons: list[float] = []
 
-def evaluation_seeds(seed: int, n: int) -> np.ndarray:
-    """The fixed evaluation seeds of a run: the same at every evaluation."""
-    base = _streams(seed)["eval_seed"]
-    return (base + np.arange(n, dtype=np.int64)) % (2**31 - 1)
+        def choose(s: int) -> tuple[int, float]:
+            epsilon = variant.behaviour_epsilon(schedule(episode, int(state_visits[s])))
+            epsilons.append(epsilon)
+            state_visits[s] += 1
+            return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
+
+        start_observation = first_action = None
+        if variant.needs_start_control:
+            starts = state.streams.starts
+            start_observation = self.start_states[int(starts.integers(len(self.start_states)))]
+            first_action = int(starts.integers(self.environment.n_actions))
+            state_visits[self.environment.encoder.encode(start_observation)] += 1
+        played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
+        arrays = played.arrays
+
+        def bootstrap_value() -> float:
+            final = played.final_state
+            epsilon = variant.behaviour_epsilon(schedule(episode, int(state_visits[final])))
+            return variant.tail_value(q[final], epsilon)
+
+        tail = tail_value(self.settings.truncation, truncated=played.truncated, bootstrap_value=bootstrap_value)
+        used = 0
+        if tail is not None:
+            used = variant.update(values, arrays.with_tail(tail) if tail else arrays)
+            used = arrays.length if used is None else used
+        state.capped_episodes += int(played.capped)
+        mean_epsilon = sum(epsilons) / len(epsilons) if epsilons else 0.0
+        state.window.add(played.total_reward, arrays.length, mean_epsilon, played.truncated, played.capped, used)
+
+    def save_state(self, path) -> Path:
+        """Write the whole state between two episodes, the environment's generator included."""
+        self.state.environment_rng = self.episodes.rng_state()
+        return self.state.save(path)
+
+    # ------------------------------------------------------------ the loop
+
+    def run(self, pause_at: int | None = None) -> TrainingOutcome:
+        """Play until ``settings.episodes``, logging, evaluating and snapshotting on the way.
+
+        ``pause_at`` stops earlier, between two episodes, as a checkpoint does: the run is
+        not over, so nothing is logged as final, and :meth:`save_state` can be called.
+        """
+        settings, state = self.settings, self.state
+        stop = settings.episodes if pause_at is None else min(int(pause_at), settings.episodes)
+        snapshot_dir = Path(tempfile.mkdtemp(prefix="qtally-snapshots-"))
+        try:
+            while state.episode < stop:
+                self.play_and_learn()
+                episode = state.episode
+                last = episode == settings.episodes
+                if episode % settings.log_every == 0 or last:
+                    metrics = state.window.metrics()
+                    metrics["coverage_sa"] = state.values.coverage()
+                    self._log(metrics, episode)
+                    if self.progress is not None:
+                        self.progress.update(episode, metrics)
+                    state.window = LogWindow()
+                if (settings.eval_every and episode % settings.eval_every == 0) or last:
+                    self.evaluate()
+                if settings.snapshot_every and episode % settings.snapshot_every == 0 and not last:
+                    path = self.snapshot().save(snapshot_dir / f"policy-{episode:09d}.npz")
+                    self.recorder.log_file(path, "snapshots")
+                    path.unlink()
+            state.environment_rng = self.episodes.rng_state()
+            self.recorder.flush()
+        finally:
+            if getattr(self, "_owns_evaluation_environment", False):
+                self._evaluation_environment.close()
+                self._evaluation_environment = None
+                self._owns_evaluation_environment = False
+            for leftover in snapshot_dir.glob("*"):
+                leftover.unlink()
+            snapshot_dir.rmdir()
+        return TrainingOutcome(
+            values=state.values,
+            artifact=self.snapshot(),
+            history=state.history,
+            final_evaluation=state.final_evaluation,
+            capped_episodes=state.capped_episodes,
+            step_cap=self.step_cap,
+        )
 
 
 def train(
@@ -122,98 +233,11 @@ def train(
     variant,
     schedule,
     settings: TrainingSettings,
-    *,
-    recorder: Recorder | None = None,
-    evaluation_environment: TabularEnvironment | None = None,
-    probes: tuple[Probe, ...] = (),
-    progress: ProgressSink | None = None,
-    facts: Mapping[str, object] | None = None,
+    **options,
 ) -> TrainingOutcome:
-    """Run Monte Carlo control for ``settings.episodes`` episodes; return the table and the final policy."""
-    if settings.truncation not in TRUNCATION_CHOICES:
-        raise ValueError(f"truncation={settings.truncation!r}; choose one of {', '.join(TRUNCATION_CHOICES)}")
-    recorder = recorder or NullRecorder()
-    streams = _streams(settings.seed)
-    behaviour_rng: np.random.Generator = streams["behaviour"]
-    starts_rng: np.random.Generator = streams["starts"]
-    values = ActionValues.zeros(environment.n_states, environment.n_actions, settings.initial_value)
-    q, state_visits = values.q, values.state_visits
-    start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
-    eval_seeds = evaluation_seeds(settings.seed, settings.eval_episodes)
-    eval_env = evaluation_environment or environment
-    history: dict[str, list[tuple[int, float]]] = {}
-    facts = dict(facts or {})
+    """Run Monte Carlo control for ``settings.episodes`` episodes; return the table and the final policy.
 
-    window = _Window()
-    episode = 0
-
-    def choose(state: int) -> tuple[int, float]:
-        nonlocal epsilon_sum, epsilon_count
-        epsilon = variant.behaviour_epsilon(schedule(episode, int(state_visits[state])))
-        epsilon_sum += epsilon
-        epsilon_count += 1
-        state_visits[state] += 1
-        return epsilon_greedy_action(q[state], epsilon, behaviour_rng)
-
-    def snapshot() -> PolicyArtifact:
-        return PolicyArtifact.from_q(q, values.visits, environment.signature(), episode=episode, **facts)
-
-    def log(metrics: Mapping[str, float], step: int) -> None:
-        recorder.log_metrics(metrics, step)
-        for name, value in metrics.items():
-            history.setdefault(name, []).append((step, float(value)))
-
-    def evaluate() -> dict[str, float]:
-        returns = greedy_rollout_returns(eval_env, greedy_actions(q), eval_seeds)
-        summary = summarise_returns(returns)
-        metrics = {"eval_return_mean": summary.mean, "eval_return_ci95": summary.ci95}
-        for probe in probes:
-            metrics.update(probe(q))
-        log(metrics, episode)
-        return metrics
-
-    snapshot_dir = Path(tempfile.mkdtemp(prefix="qtally-snapshots-"))
-    final_evaluation: dict[str, float] = {}
-    for episode in range(1, settings.episodes + 1):
-        epsilon_sum, epsilon_count = 0.0, 0
-        start_observation = first_action = None
-        if variant.needs_start_control:
-            start_observation = start_states[int(starts_rng.integers(len(start_states)))]
-            first_action = int(starts_rng.integers(environment.n_actions))
-            state_visits[environment.encoder.encode(start_observation)] += 1
-        played = play_episode(
-            environment,
-            choose,
-            seed=streams["env_seed"] if episode == 1 else None,
-            start_observation=start_observation,
-            first_action=first_action,
-        )
-        arrays = played.arrays
-        update = True
-        if played.truncated:
-            if settings.truncation == "discard":
-                update = False
-            elif settings.truncation == "bootstrap":
-                arrays = EpisodeArrays(arrays.states, arrays.actions, arrays.rewards, arrays.behaviour_probabilities, tail_value=float(q[played.final_state].max()))
-        used = 0
-        if update:
-            used = variant.update(values, arrays)
-            used = arrays.length if used is None else used
-        window.add(played.total_reward, arrays.length, epsilon_sum / epsilon_count if epsilon_count else 0.0, played.truncated, used)
-
-        if episode % settings.log_every == 0 or episode == settings.episodes:
-            metrics = window.metrics()
-            metrics["coverage_sa"] = values.coverage()
-            log(metrics, episode)
-            if progress is not None:
-                progress.update(episode, metrics)
-            window = _Window()
-        if (settings.eval_every and episode % settings.eval_every == 0) or episode == settings.episodes:
-            final_evaluation = evaluate()
-        if settings.snapshot_every and episode % settings.snapshot_every == 0 and episode != settings.episodes:
-            path = snapshot().save(snapshot_dir / f"policy-{episode:09d}.npz")
-            recorder.log_file(path, "snapshots")
-            path.unlink()
-    artifact = snapshot()
-    recorder.flush()
-    return TrainingOutcome(values=values, artifact=artifact, history=history, final_evaluation=final_evaluation)
+    ``options`` are :class:`Trainer`'s keyword arguments (recorder, evaluation_environment,
+    probes, progress, facts, state).
+    """
+    return Trainer(environment, variant, schedule, settings, **options).run()

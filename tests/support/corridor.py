@@ -80,3 +80,16 @@ class Corridor(gym.Env):
 def optimal_actions(gamma: float) -> list[int]:
     """Hand-worked optimum for cells 0..5 (see the module docstring)."""
     return [0] + [1] * (GOAL - 1) if gamma == 1.0 else [1] * GOAL
+
+
+class FixedStartCorridor(Corridor):
+    """The corridor, but every ordinary reset puts the walker in cell 0.
+
+    Only a start chosen through ``reset_to`` reaches the far cells under a policy that
+    exits at once, so a learner that ignores its drawn start state shows here.
+    """
+
+    def reset(self, *, seed=None, options=None):
+        gym.Env.reset(self, seed=seed)
+        self.cell = 0
+        return self.cell, {}

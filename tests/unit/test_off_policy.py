@@ -18,18 +18,22 @@ def test_weights_accumulate_and_loop_stops_off_target():
     assert values.q[2, 1] == pytest.approx(3.0)
     assert values.cumulative_weights[1, 0] == pytest.approx(1 / 0.6)
     assert values.q[1, 0] == pytest.approx(3.0)
-    # t=0: W = 1/(0.6*0.8); the pair is updated with that weight; afterwards Q(0) = [0, 0]
-    # is a tie, and the target splits ties, so the loop would go on (it has reached t = 0).
+    # t=0: W = 1/(0.6*0.8); the pair is updated with that weight (the loop has reached t = 0).
     assert values.cumulative_weights[0, 1] == pytest.approx(1 / (0.6 * 0.8))
     assert used == 3
 
 
-def test_tied_greedy_target_halves_the_weight():
+def test_a_tie_goes_to_the_lowest_action_and_the_weight_grows_by_one_over_b():
+    # One tie rule everywhere (lowest index): Q(1) = [0, 0] after the last step's update
+    # (reward 0), so the target takes action 0 in state 1 with probability 1.
     values = ActionValues.zeros(2, 2)
-    # Last step: state 1, action 1, reward 0 -> Q(1) stays [0, 0], a tie: pi(1|1) = 1/2.
-    episode = EpisodeArrays(np.array([0, 1]), np.array([0, 1]), np.array([0.0, 0.0]), np.array([0.5, 0.5]))
-    OffPolicy(gamma=1.0).update(values, episode)
-    assert values.cumulative_weights[0, 0] == pytest.approx(0.5 / 0.5)
+    took_target = EpisodeArrays(np.array([0, 1]), np.array([1, 0]), np.array([0.0, 0.0]), np.array([0.5, 0.4]))
+    assert OffPolicy(gamma=1.0).update(values, took_target) == 2
+    assert values.cumulative_weights[0, 1] == pytest.approx(1 / 0.4)  # W = pi / b = 1 / 0.4, not (1/2) / 0.4
+    values = ActionValues.zeros(2, 2)
+    left_target = EpisodeArrays(np.array([0, 1]), np.array([0, 1]), np.array([0.0, 0.0]), np.array([0.5, 0.5]))
+    assert OffPolicy(gamma=1.0).update(values, left_target) == 1  # action 1 at a tie is off target: stop
+    assert values.cumulative_weights[0].sum() == 0.0
 
 
 def test_loop_stops_before_earlier_steps_when_behaviour_leaves_target():

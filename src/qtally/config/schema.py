@@ -21,6 +21,7 @@ class EnvConfig:
     id: str = MISSING
     kwargs: dict[str, Any] = field(default_factory=dict)
     max_episode_steps: Optional[int] = None
+    step_cap: Optional[int] = None  # hard cap on every episode's steps; null: derived from the state count
     observation_names: Optional[list[str]] = None
     bins: Optional[list[int]] = None
     low: Optional[list[float]] = None

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ActionValues", "greedy_actions"]
+__all__ = ["ActionValues"]
 
 
 @dataclass
@@ -42,20 +42,3 @@ class ActionValues:
     def coverage(self) -> float:
         """Fraction of state-action pairs whose estimate has absorbed at least one return."""
         return float(np.count_nonzero(self.visits)) / self.visits.size
-
-
-def greedy_actions(q: np.ndarray, atol: float = 0.0) -> np.ndarray:
-    """The lowest action index whose value is within ``atol`` of each state's best.
-
-    Deterministic and reproducible: this is the policy a Q table stands for when it is saved,
-    evaluated or compared with the optimum.
-
-    >>> greedy_actions(np.array([[0.0, 1.0], [2.0, 2.0]]))
-    array([1, 0])
-    >>> greedy_actions(np.array([[1.0, 2.0, 2.0], [0.0, 0.0, -1.0]]), atol=1.5).tolist()
-    [0, 0]
-    """
-    q = np.asarray(q, dtype=float)
-    if atol == 0.0:
-        return np.argmax(q, axis=1)
-    return np.argmax(q >= q.max(axis=1, keepdims=True) - atol, axis=1)

@@ -1,15 +1,16 @@
 """The three Monte Carlo control variants, as updates of a Q table from one finished episode.
 
-Each variant answers two questions: how the next episode is played (``epsilon_for``,
-``needs_start_control``) and how a played episode changes the estimates (``update``).
-All take arrays and return nothing; the state lives in :class:`ActionValues`.
+Each variant answers three questions: how the next episode is played
+(``behaviour_epsilon``, ``needs_start_control``), what a state reached at a time-limit cut
+is worth to the policy it learns (``tail_value``), and how a played episode changes the
+estimates (``update``). All take arrays; the state lives in :class:`ActionValues`.
 
 - ``exploring_starts``: episodes begin from a random state-action pair, then act greedily.
 - ``on_policy``: first-visit (or every-visit) control of an epsilon-soft policy.
 - ``off_policy``: weighted importance sampling with an epsilon-soft behaviour policy
   and a greedy target; the backward loop stops where the behaviour action leaves the target.
-  The target splits ties evenly among maximal actions (pi(a|s) = 1/#ties), so a fresh
-  all-zero row does not pin the target to action 0 and stop every backward loop at once.
+  The target is the greedy policy under qtally's one tie rule (lowest index,
+  :mod:`qtally.policy.table_policy`), so pi(a|s) is 1 on the target action and 0 elsewhere.
 
 Step size: ``None`` means the sample average (1/N, or W/C for weighted IS); a number
 means a constant step. For off-policy with a constant step the update is
@@ -22,29 +23,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..policy.table_policy import TablePolicy
 from .action_values import ActionValues
+from .episodes import EpisodeArrays
 
 __all__ = ["EpisodeArrays", "ExploringStarts", "OnPolicy", "OffPolicy", "make_variant", "VARIANT_NAMES"]
-
-
-@dataclass(frozen=True)
-class EpisodeArrays:
-    """One played episode: states and actions as table indices, the rewards that followed.
-
-    ``behaviour_probabilities[t]`` is the probability the acting policy gave ``actions[t]``;
-    ``tail_value`` is what the return is seeded with after the last reward (0 when the
-    episode terminated; a bootstrap estimate when a time limit cut it short).
-    """
-
-    states: np.ndarray
-    actions: np.ndarray
-    rewards: np.ndarray
-    behaviour_probabilities: np.ndarray
-    tail_value: float = 0.0
-
-    @property
-    def length(self) -> int:
-        return int(self.states.shape[0])
 
 
 def _first_visit_times(keys: list[int]) -> dict[int, int]:
@@ -97,6 +80,10 @@ class ExploringStarts(_EvaluationUpdate):
     def behaviour_epsilon(self, epsilon: float) -> float:
         return 0.0
 
+    def tail_value(self, q_row: np.ndarray, epsilon: float) -> float:
+        """The acting policy is greedy: the best value of the state reached."""
+        return float(np.max(q_row))
+
 
 @dataclass(frozen=True)
 class OnPolicy(_EvaluationUpdate):
@@ -107,6 +94,10 @@ class OnPolicy(_EvaluationUpdate):
 
     def behaviour_epsilon(self, epsilon: float) -> float:
         return epsilon
+
+    def tail_value(self, q_row: np.ndarray, epsilon: float) -> float:
+        """The learned policy is the epsilon-soft one: ``sum_a pi(a|s) Q(s, a)``, not the max."""
+        return TablePolicy(np.asarray(q_row, dtype=float)[None, :]).state_value(0, epsilon)
 
 
 @dataclass(frozen=True)
@@ -123,6 +114,10 @@ class OffPolicy:
     def behaviour_epsilon(self, epsilon: float) -> float:
         return epsilon
 
+    def tail_value(self, q_row: np.ndarray, epsilon: float) -> float:
+        """The target policy is greedy: the best value of the state reached."""
+        return float(np.max(q_row))
+
     def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
         """Run the weighted-IS backward loop; return how many time steps were used."""
         if episode.length == 0:
@@ -131,24 +126,24 @@ class OffPolicy:
         keys = (episode.states * n_actions + episode.actions).tolist()
         first = _first_visit_times(keys) if self.first_visit else None
         q, weights_sum, visits = values.q, values.cumulative_weights, values.visits
+        states, actions = episode.states.tolist(), episode.actions.tolist()
+        rewards, behaviour = episode.rewards.tolist(), episode.behaviour_probabilities.tolist()
+        gamma, step_size = self.gamma, self.step_size
         g = episode.tail_value
         w = 1.0
         used = 0
         for t in range(episode.length - 1, -1, -1):
-            s = int(episode.states[t])
-            a = int(episode.actions[t])
-            g = self.gamma * g + float(episode.rewards[t])
+            s, a = states[t], actions[t]
+            g = gamma * g + rewards[t]
             if first is None or first[keys[t]] == t:
                 weights_sum[s, a] += w
                 visits[s, a] += 1
-                step = w / weights_sum[s, a] if self.step_size is None else min(1.0, self.step_size * w)
+                step = w / weights_sum[s, a] if step_size is None else min(1.0, step_size * w)
                 q[s, a] += step * (g - q[s, a])
             used += 1
-            row = q[s]
-            n_greedy = int(np.count_nonzero(row == row.max()))
-            if row[a] != row.max():
+            if a != int(q[s].argmax()):  # the greedy target (lowest index on ties) would not take a
                 break
-            w *= (1.0 / n_greedy) / float(episode.behaviour_probabilities[t])
+            w /= behaviour[t]  # pi(a|s) = 1 for the target action
         return used
 
 

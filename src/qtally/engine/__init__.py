@@ -1,1 +1,1 @@
-"""qtally.engine"""
+"""qtally.engine: where episodes come from (see :mod:`qtally.engine.episodes`)."""

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from ..engine.gym_loop import play_episode
+from ..engine.episodes import GymEpisodes
 from ..envs.factory import TabularEnvironment
 
 __all__ = ["ReturnSummary", "summarise_returns", "greedy_rollout_returns"]
@@ -40,11 +40,16 @@ def summarise_returns(returns: np.ndarray) -> ReturnSummary:
     return ReturnSummary(mean=float(returns.mean()), ci95=float(half_width), n=n)
 
 
-def greedy_rollout_returns(environment: TabularEnvironment, actions: np.ndarray, seeds: np.ndarray) -> np.ndarray:
+def greedy_rollout_returns(environment: TabularEnvironment, actions: np.ndarray, seeds: np.ndarray, step_cap: int) -> np.ndarray:
     """Undiscounted return of the deterministic policy ``actions[state]`` from each seeded reset."""
-    table = np.asarray(actions, dtype=np.int64)
+    table = np.asarray(actions, dtype=np.int64).tolist()
+    episodes = GymEpisodes(environment, step_cap)
 
     def choose(state: int) -> tuple[int, float]:
-        return int(table[state]), 1.0
+        return table[state], 1.0
 
-    return np.array([play_episode(environment, choose, seed=int(seed)).total_reward for seed in seeds])
+    returns = np.empty(len(seeds))
+    for i, seed in enumerate(seeds):
+        episodes.seed(int(seed))
+        returns[i] = episodes.play(choose).total_reward
+    return returns

@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from ..control.action_values import greedy_actions
+from .table_policy import greedy_actions
 from ..envs.encoders import encoder_from_spec
 
 __all__ = ["PolicyArtifact", "PolicyFormatError", "load_policy", "FORMAT_NAME", "FORMAT_VERSION"]

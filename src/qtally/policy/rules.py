@@ -23,6 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .table_policy import deterministic_probabilities
+
 __all__ = [
     "PolicyRuleError",
     "RULES",
@@ -80,9 +82,7 @@ def deterministic_policy(actions: np.ndarray, n_actions: int) -> np.ndarray:
     actions = np.asarray(actions, dtype=np.int64)
     if actions.size and (actions.min() < 0 or actions.max() >= n_actions):
         raise PolicyRuleError(f"actions must lie in 0..{n_actions - 1}")
-    table = np.zeros((actions.shape[0], n_actions))
-    table[np.arange(actions.shape[0]), actions] = 1.0
-    return table
+    return deterministic_probabilities(actions, n_actions)
 
 
 def threshold_policy(

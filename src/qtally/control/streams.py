@@ -1,0 +1,90 @@
+"""Random streams: one seed split into independent streams, shared by training, prediction and rollouts.
+
+``seed`` is split by :class:`numpy.random.SeedSequence` into four independent children:
+
+- ``env_seed``: the seed of the environment's own generator (passed to its first ``reset``);
+- ``acting``: the uniforms behind every decision of the acting policy, one per decision
+  (the draw protocol of :mod:`qtally.policy.table_policy`), read through :class:`UniformDraws`;
+- ``starts``: the state-action pairs of exploring starts (or prediction's chosen starts);
+- ``evaluation``: the base of the fixed evaluation seeds.
+
+So changing how often a run evaluates cannot shift a single training draw, and the whole
+state of every stream fits in a JSON object (:meth:`RandomStreams.state`), which is what a
+checkpoint needs.
+
+>>> a, b = RandomStreams(7), RandomStreams(7)
+>>> [a.acting.next() for _ in range(3)] == [b.acting.next() for _ in range(3)]
+True
+>>> evaluation_seeds(RandomStreams(7).evaluation_base, 3).tolist() == evaluation_seeds(RandomStreams(7).evaluation_base, 3).tolist()
+True
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+__all__ = ["RandomStreams", "UniformDraws", "evaluation_seeds", "SEED_MODULUS"]
+
+SEED_MODULUS = 2**31 - 1  # seeds handed to environments stay in the 31-bit range every library accepts
+_BLOCK = 1024
+
+
+class UniformDraws:
+    """Uniforms in [0, 1) from a generator, drawn in blocks but read one at a time.
+
+    A block of ``Generator.random(n)`` holds exactly the numbers that ``n`` single calls
+    would give, so the block size never changes the stream; it only saves the per-call cost.
+    """
+
+    def __init__(self, generator: np.random.Generator):
+        self.generator = generator
+        self._block_start_state = generator.bit_generator.state
+        self._block: list[float] = generator.random(_BLOCK).tolist()
+        self._position = 0
+
+    def next(self) -> float:
+        if self._position == _BLOCK:
+            self._block_start_state = self.generator.bit_generator.state
+            self._block = self.generator.random(_BLOCK).tolist()
+            self._position = 0
+        u = self._block[self._position]
+        self._position += 1
+        return u
+
+    def state(self) -> dict[str, Any]:
+        return {"block_start": self._block_start_state, "position": self._position}
+
+    def restore(self, state: dict[str, Any]) -> None:
+        self.generator.bit_generator.state = state["block_start"]
+        self._block_start_state = self.generator.bit_generator.state
+        self._block = self.generator.random(_BLOCK).tolist()
+        self._position = int(state["position"])
+
+
+def evaluation_seeds(base: int, n: int) -> np.ndarray:
+    """The ``n`` fixed evaluation seeds that start at ``base``: the same at every evaluation of a run."""
+    return (int(base) + np.arange(n, dtype=np.int64)) % SEED_MODULUS
+
+
+class RandomStreams:
+    """The independent streams of one seed (module docstring)."""
+
+    def __init__(self, seed: int):
+        env_sequence, acting_sequence, start_sequence, evaluation_sequence = np.random.SeedSequence(int(seed)).spawn(4)
+        self.seed = int(seed)
+        self.env_seed = int(env_sequence.generate_state(1)[0]) % SEED_MODULUS
+        self.acting = UniformDraws(np.random.default_rng(acting_sequence))
+        self.starts = np.random.default_rng(start_sequence)
+        self.evaluation_base = int(evaluation_sequence.generate_state(1)[0]) % SEED_MODULUS
+
+    def state(self) -> dict[str, Any]:
+        """Everything needed to continue every stream exactly where it is (JSON-able)."""
+        return {"seed": self.seed, "acting": self.acting.state(), "starts": self.starts.bit_generator.state}
+
+    def restore(self, state: dict[str, Any]) -> None:
+        if int(state["seed"]) != self.seed:
+            raise ValueError(f"these streams belong to seed {state['seed']}, not {self.seed}")
+        self.acting.restore(state["acting"])
+        self.starts.bit_generator.state = state["starts"]

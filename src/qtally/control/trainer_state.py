@@ -1,0 +1,158 @@
+"""Everything a training run has learned and drawn so far, as one object that can be saved and restored.
+
+A :class:`TrainerState` holds the tables (Q, visit counts, importance-sampling weights,
+per-state visits), the episode counter, the open logging window, the metric history, the
+last evaluation, and the state of every random stream, the environment's own included.
+Restoring it and playing on gives the same table, bit for bit, as never having stopped.
+
+File format ("qtally-trainer-state", version 1): a NumPy ``.npz`` of plain arrays plus
+``metadata``, a JSON string with the counters, the window, the history, the stream
+states and a SHA-256 checksum of the arrays. It loads with ``allow_pickle=False`` and
+is written whole (temporary file, fsync, rename).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .action_values import ActionValues
+from .streams import RandomStreams
+
+__all__ = ["LogWindow", "TrainerState", "TrainerStateError", "STATE_FORMAT", "STATE_VERSION"]
+
+STATE_FORMAT = "qtally-trainer-state"
+STATE_VERSION = 1
+_ARRAYS = ("q", "visits", "cumulative_weights", "state_visits")
+
+
+class TrainerStateError(ValueError):
+    """The file is not a usable trainer state (damaged, edited, another format or seed)."""
+
+
+@dataclass
+class LogWindow:
+    """Running sums over one logging window: constant memory however long the window."""
+
+    episodes: int = 0
+    return_sum: float = 0.0
+    length_sum: int = 0
+    epsilon_sum: float = 0.0
+    truncated: int = 0
+    capped: int = 0
+    steps_used: int = 0
+
+    def add(self, total_reward: float, length: int, epsilon: float, truncated: bool, capped: bool, steps_used: int) -> None:
+        self.episodes += 1
+        self.return_sum += total_reward
+        self.length_sum += length
+        self.epsilon_sum += epsilon
+        self.truncated += int(truncated)
+        self.capped += int(capped)
+        self.steps_used += steps_used
+
+    def metrics(self) -> dict[str, float]:
+        n = max(self.episodes, 1)
+        return {
+            "return_mean": self.return_sum / n,
+            "episode_length_mean": self.length_sum / n,
+            "epsilon": self.epsilon_sum / n,
+            "truncated_fraction": self.truncated / n,
+            "step_capped_fraction": self.capped / n,
+            "update_steps_fraction": self.steps_used / max(self.length_sum, 1),
+        }
+
+
+def _checksum(arrays: dict[str, np.ndarray]) -> str:
+    digest = hashlib.sha256()
+    for name in _ARRAYS:
+        digest.update(np.ascontiguousarray(arrays[name]).tobytes())
+    return digest.hexdigest()
+
+
+@dataclass
+class TrainerState:
+    """The whole state of a training run between two episodes (module docstring)."""
+
+    values: ActionValues
+    streams: RandomStreams
+    episode: int = 0
+    window: LogWindow = field(default_factory=LogWindow)
+    history: dict[str, list[tuple[int, float]]] = field(default_factory=dict)
+    final_evaluation: dict[str, float] = field(default_factory=dict)
+    environment_rng: dict[str, Any] | None = None
+    capped_episodes: int = 0
+
+    @classmethod
+    def fresh(cls, n_states: int, n_actions: int, seed: int, initial_value: float = 0.0) -> "TrainerState":
+        return cls(values=ActionValues.zeros(n_states, n_actions, initial_value), streams=RandomStreams(seed))
+
+    def save(self, path: str | os.PathLike) -> Path:
+        """Write the state whole: a crash during the write leaves the previous file intact."""
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        arrays = {name: getattr(self.values, name) for name in _ARRAYS}
+        metadata = {
+            "format": STATE_FORMAT,
+            "format_version": STATE_VERSION,
+            "episode": self.episode,
+            "window": asdict(self.window),
+            "history": {name: [[int(step), float(value)] for step, value in series] for name, series in self.history.items()},
+            "final_evaluation": self.final_evaluation,
+            "streams": self.streams.state(),
+            "environment_rng": self.environment_rng,
+            "capped_episodes": self.capped_episodes,
+            "checksum": _checksum(arrays),
+        }
+        handle, temporary = tempfile.mkstemp(dir=path.parent, suffix=".npz.partial")
+        try:
+            with os.fdopen(handle, "wb") as stream:
+                np.savez(stream, metadata=np.array(json.dumps(metadata)), **arrays)
+                stream.flush()
+                os.fsync(stream.fileno())
+            os.replace(temporary, path)
+        except BaseException:
+            Path(temporary).unlink(missing_ok=True)
+            raise
+        return path
+
+    @classmethod
+    def load(cls, path: str | os.PathLike) -> "TrainerState":
+        """Read and verify a saved state (no pickle); :class:`TrainerStateError` if it is not one."""
+        name = os.fspath(path)
+        try:
+            with np.load(path, allow_pickle=False) as archive:
+                arrays = {key: archive[key] for key in _ARRAYS}
+                metadata = json.loads(str(archive["metadata"]))
+        except FileNotFoundError:
+            raise TrainerStateError(f"trainer state {name!r} does not exist") from None
+        except Exception as exc:  # zip, npy or JSON damage of any kind
+            raise TrainerStateError(f"{name!r} is not a readable qtally trainer state ({type(exc).__name__})") from None
+        if not isinstance(metadata, dict) or metadata.get("format") != STATE_FORMAT:
+            raise TrainerStateError(f"{name!r} is not a qtally trainer state")
+        if metadata.get("format_version") != STATE_VERSION:
+            raise TrainerStateError(f"{name!r} has trainer-state version {metadata.get('format_version')}; this qtally reads {STATE_VERSION}")
+        if metadata.get("checksum") != _checksum(arrays):
+            raise TrainerStateError(f"{name!r} failed its checksum: the file is damaged or was edited")
+        try:
+            streams = RandomStreams(int(metadata["streams"]["seed"]))
+            streams.restore(metadata["streams"])
+            return cls(
+                values=ActionValues(**{key: np.array(arrays[key]) for key in _ARRAYS}),
+                streams=streams,
+                episode=int(metadata["episode"]),
+                window=LogWindow(**metadata["window"]),
+                history={key: [(int(step), float(value)) for step, value in series] for key, series in metadata["history"].items()},
+                final_evaluation={key: float(value) for key, value in metadata["final_evaluation"].items()},
+                environment_rng=metadata["environment_rng"],
+                capped_episodes=int(metadata.get("capped_episodes", 0)),
+            )
+        except (KeyError, TypeError, ValueError) as exc:
+            raise TrainerStateError(f"{name!r} has an incomplete trainer state ({exc})") from None

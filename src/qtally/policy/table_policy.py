@@ -1,0 +1,159 @@
+"""The policy a Q table stands for: one tie rule, one draw protocol, used by every command.
+
+Training acts with it, the off-policy target is it, evaluation and exact evaluation
+measure it, the policy file and the pyfunc model store it, and the pictures draw it. So
+"the epsilon-soft policy of Q" means the same thing everywhere.
+
+Tie rule: among actions of equal value the **lowest index** is the greedy one (as
+``numpy.argmax``). It is deterministic, so a served policy always answers the same, an
+exact evaluation needs no tie bookkeeping, and every decision consumes the same number
+of random numbers. (A fresh all-zero row therefore prefers action 0; epsilon exploration,
+exploring starts and, for deployment, the unvisited-state fallback deal with that.)
+
+Draw protocol: every decision of an epsilon-soft policy consumes **exactly one uniform**
+``u`` in [0, 1) from the acting stream, whatever the data: if ``u < epsilon`` the action is
+``floor(u / epsilon * |A|)`` (uniform over all actions), otherwise the greedy action. A
+probability table is sampled by inverse transform with one uniform as well
+(:func:`sample_action`). A compiled engine that replays the same uniforms makes the same
+choices.
+
+>>> q = np.array([[0.0, 2.0, 2.0], [1.0, 0.0, 0.0]])
+>>> greedy_actions(q).tolist()
+[1, 0]
+>>> epsilon_soft_probabilities(q, 0.3).round(2).tolist()
+[[0.1, 0.8, 0.1], [0.8, 0.1, 0.1]]
+>>> a, p = epsilon_greedy_decision(q[0].tolist(), 0.3, 0.05)   # u < epsilon: explore, floor(0.05 / 0.3 * 3) = 0
+>>> a, round(p, 6)
+(0, 0.1)
+>>> a, p = epsilon_greedy_decision(q[0].tolist(), 0.3, 0.50)   # u >= epsilon: greedy, ties to the lowest index
+>>> a, round(p, 6)
+(1, 0.8)
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = [
+    "TIE_RULE",
+    "greedy_actions",
+    "epsilon_soft_probabilities",
+    "deterministic_probabilities",
+    "epsilon_greedy_decision",
+    "sample_action",
+    "TablePolicy",
+]
+
+TIE_RULE = "lowest index"
+
+
+def greedy_actions(q: np.ndarray, atol: float = 0.0) -> np.ndarray:
+    """Per state, the greedy action of a Q table: the lowest index within ``atol`` of the best.
+
+    ``atol`` > 0 treats values closer than a numerical tolerance as tied (exact dynamic
+    programming uses its convergence tolerance); training and artifacts use 0.
+
+    >>> greedy_actions(np.array([[1.0, 2.0, 2.0], [0.0, 0.0, -1.0]]), atol=1.5).tolist()
+    [0, 0]
+    """
+    q = np.asarray(q, dtype=float)
+    if atol == 0.0:
+        return np.argmax(q, axis=1)
+    return np.argmax(q >= q.max(axis=1, keepdims=True) - atol, axis=1)
+
+
+def deterministic_probabilities(actions: np.ndarray, n_actions: int) -> np.ndarray:
+    """One-hot ``(S, A)`` table of one action per state.
+
+    >>> deterministic_probabilities(np.array([2, 0]), 3).tolist()
+    [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]]
+    """
+    actions = np.asarray(actions, dtype=np.int64)
+    probabilities = np.zeros((actions.shape[0], n_actions))
+    probabilities[np.arange(actions.shape[0]), actions] = 1.0
+    return probabilities
+
+
+def epsilon_soft_probabilities(q: np.ndarray, epsilon: float | np.ndarray) -> np.ndarray:
+    """``epsilon / |A|`` on every action plus ``1 - epsilon`` on the greedy one.
+
+    ``epsilon`` may be one number or one per state (a per-state schedule).
+    """
+    q = np.asarray(q, dtype=float)
+    epsilon = np.broadcast_to(np.asarray(epsilon, dtype=float), (q.shape[0],))
+    if ((epsilon < 0.0) | (epsilon > 1.0)).any():
+        raise ValueError(f"epsilon must be in [0, 1], got {epsilon.min()}..{epsilon.max()}")
+    probabilities = np.repeat((epsilon / q.shape[1])[:, None], q.shape[1], axis=1)
+    probabilities[np.arange(q.shape[0]), greedy_actions(q)] += 1.0 - epsilon
+    return probabilities
+
+
+def epsilon_greedy_decision(q_row: list[float], epsilon: float, u: float) -> tuple[int, float]:
+    """The action of the epsilon-soft policy of one Q row for the uniform ``u``, and its probability.
+
+    Plain Python on a list: this runs once per time step.
+    """
+    n_actions = len(q_row)
+    greedy = q_row.index(max(q_row))
+    if u < epsilon:
+        action = min(int(u / epsilon * n_actions), n_actions - 1)
+    else:
+        action = greedy
+    return action, epsilon / n_actions + ((1.0 - epsilon) if action == greedy else 0.0)
+
+
+def sample_action(cumulative_row: list[float], probability_row: list[float], u: float) -> tuple[int, float]:
+    """Inverse-transform sampling of one row of a probability table with the uniform ``u``.
+
+    Zero-probability actions are never chosen, even at the boundaries.
+
+    >>> sample_action([0.25, 0.25, 1.0], [0.25, 0.0, 0.75], 0.25)
+    (2, 0.75)
+    """
+    threshold = u * cumulative_row[-1]
+    last = len(cumulative_row) - 1
+    action = 0
+    while action < last and (cumulative_row[action] <= threshold or probability_row[action] == 0.0):
+        action += 1
+    return action, probability_row[action]
+
+
+@dataclass(frozen=True)
+class TablePolicy:
+    """A Q table read as a policy: greedy actions, epsilon-soft probabilities, and what was learned where.
+
+    ``visits`` (returns absorbed per pair) tells which states training reached; states
+    never reached have no learned action, and :attr:`visited_states` says which they are.
+    """
+
+    q: np.ndarray
+    visits: np.ndarray | None = None
+
+    @property
+    def n_states(self) -> int:
+        return int(self.q.shape[0])
+
+    @property
+    def n_actions(self) -> int:
+        return int(self.q.shape[1])
+
+    def greedy_actions(self) -> np.ndarray:
+        return greedy_actions(self.q)
+
+    def probabilities(self, epsilon: float | np.ndarray = 0.0) -> np.ndarray:
+        """The ``(S, A)`` action probabilities; ``epsilon=0`` is the greedy policy."""
+        return epsilon_soft_probabilities(self.q, epsilon)
+
+    def state_value(self, state: int, epsilon: float = 0.0) -> float:
+        """``sum_a pi(a|s) Q(s, a)`` of the epsilon-soft policy: the value a cut-off episode is seeded with."""
+        row = self.q[state]
+        return float(epsilon * row.mean() + (1.0 - epsilon) * row.max())
+
+    @property
+    def visited_states(self) -> np.ndarray:
+        """Bool ``(S,)``: states where at least one action has absorbed a return."""
+        if self.visits is None:
+            return np.ones(self.n_states, dtype=bool)
+        return np.asarray(self.visits).sum(axis=1) > 0

@@ -1,0 +1,82 @@
+"""The one policy object: tie rule, draw protocol, and agreement between acting and exact probabilities."""
+
+import numpy as np
+import pytest
+
+from qtally.control.action_values import ActionValues
+from qtally.control.streams import RandomStreams, UniformDraws
+from qtally.control.variants import EpisodeArrays, OffPolicy, OnPolicy
+from qtally.evaluate.exact import epsilon_soft_probs
+from qtally.policy.table_policy import (
+    TablePolicy,
+    epsilon_greedy_decision,
+    epsilon_soft_probabilities,
+    greedy_actions,
+    sample_action,
+)
+
+ROWS = [[0.0, 1.0, 1.0, -2.0], [3.0, 3.0, 3.0, 3.0], [-1.0, -5.0, 0.5, 0.5], [2.0, 0.0, 0.0, 0.0]]
+
+
+@pytest.mark.parametrize("epsilon", [0.0, 0.1, 0.37, 1.0])
+def test_acting_draws_each_action_with_exactly_the_probability_it_reports(epsilon):
+    # Feed the decision an evenly spaced grid of uniforms: the share of the grid that picks
+    # each action is its probability under the decision rule, with no sampling noise.
+    # Breakages caught: a wrong tie share, a reported probability that differs from the
+    # drawn one, an exploration step that skips an action.
+    grid = (np.arange(100_000) + 0.5) / 100_000
+    for row in ROWS:
+        expected = epsilon_soft_probabilities(np.array([row]), epsilon)[0]
+        picks = np.zeros(len(row))
+        for u in grid:
+            action, probability = epsilon_greedy_decision(row, epsilon, float(u))
+            picks[action] += 1
+            assert probability == pytest.approx(expected[action], abs=1e-12)
+        np.testing.assert_allclose(picks / grid.size, expected, atol=1e-4)
+
+
+def test_one_tie_rule_in_acting_exact_evaluation_and_the_artifact():
+    q = np.array(ROWS)
+    assert greedy_actions(q).tolist() == [1, 0, 2, 0]  # lowest index among the maximal actions
+    np.testing.assert_array_equal(epsilon_soft_probs(q, 0.2), epsilon_soft_probabilities(q, 0.2))
+    assert [epsilon_greedy_decision(row, 0.0, 0.99)[0] for row in ROWS] == [1, 0, 2, 0]
+    np.testing.assert_array_equal(TablePolicy(q).probabilities(0.0).argmax(axis=1), greedy_actions(q))
+
+
+def test_state_value_of_the_epsilon_soft_policy():
+    policy = TablePolicy(np.array([[0.0, 10.0, 2.0]]))
+    assert policy.state_value(0, 0.0) == 10.0
+    assert policy.state_value(0, 0.3) == pytest.approx(0.1 * 0 + 0.8 * 10 + 0.1 * 2)
+
+
+def test_table_sampling_follows_the_row_and_never_picks_a_zero():
+    row = [0.2, 0.0, 0.5, 0.3]
+    cumulative = np.cumsum(row).tolist()
+    grid = (np.arange(10_000) + 0.5) / 10_000
+    picks = np.bincount([sample_action(cumulative, row, float(u))[0] for u in grid], minlength=4)
+    np.testing.assert_allclose(picks / grid.size, row, atol=1e-4)
+    assert sample_action(cumulative, row, 0.2)[0] == 2  # the boundary skips the zero-probability action
+
+
+def test_uniform_draws_match_single_calls_and_restore_mid_block():
+    draws = UniformDraws(np.random.default_rng(3))
+    reference = np.random.default_rng(3)
+    assert [draws.next() for _ in range(2500)] == [reference.random() for _ in range(2500)]
+    saved = draws.state()
+    ahead = [draws.next() for _ in range(700)]
+    streams = RandomStreams(0)
+    streams.acting.restore(saved)
+    assert [streams.acting.next() for _ in range(700)] == ahead
+
+
+def test_first_visit_is_per_state_action_pair():
+    # State 0 is visited twice with different actions: both pairs get their first return.
+    # Breakage caught: first visits keyed on the state alone (the second pair would be skipped).
+    episode = EpisodeArrays(np.array([0, 0]), np.array([0, 1]), np.array([1.0, 2.0]), np.array([1.0, 1.0]))
+    values = ActionValues.zeros(1, 2)
+    OnPolicy(gamma=1.0, first_visit=True).update(values, episode)
+    assert values.q[0].tolist() == [3.0, 2.0] and values.visits[0].tolist() == [1, 1]
+    values = ActionValues.zeros(1, 2)
+    values.q[0] = [0.0, 5.0]  # target: action 1, the last action taken; the loop reaches t = 0
+    OffPolicy(gamma=1.0, first_visit=True).update(values, EpisodeArrays(np.array([0, 0]), np.array([0, 1]), np.array([1.0, 2.0]), np.array([0.5, 0.5])))
+    assert values.visits[0].tolist() == [1, 1]
