@@ -39,7 +39,7 @@ step has weight 1), so multi-step weighting is not what this test checks. Off-po
 learns only from the tail of an episode where the behaviour followed the greedy target;
 with one step that tail is the whole episode, so it learns from every episode.
 
-Runtime: 4000 + 6000 + 6000 + 12000 + 20000 + 20000 = 68000 one-step episodes, about 7 s.
+Runtime: 4000 + 8000 + 8000 + 12000 + 20000 + 20000 = 72000 one-step episodes, about 7 s.
 """
 
 from __future__ import annotations
@@ -64,8 +64,8 @@ SEED = 20240601
 # needs fewer episodes than the epsilon-greedy variants, whose neighbours get eps/6 each.
 CASES = [
     (1.0, "exploring_starts", 4000),
-    (1.0, "on_policy", 6000),
-    (1.0, "off_policy", 6000),
+    (1.0, "on_policy", 8000),
+    (1.0, "off_policy", 8000),
     (2.0, "exploring_starts", 12000),
     (2.0, "on_policy", 20000),
     (2.0, "off_policy", 20000),
@@ -98,7 +98,7 @@ def test_learned_order_is_the_critical_fractile(mean_demand, variant_name, episo
         q = outcome.values.q[start]
         visits = outcome.values.visits[start]
         # Every order was tried often enough for the stated separation.
-        assert visits.min() >= 500, visits
+        assert visits.min() >= 500, visits  # expected 667 (mean 1) or 1667 (mean 2) per non-greedy order
         assert int(outcome.artifact.actions[start]) == expected, (q.round(2), visits)
 
         # The learned value of the best order matches its exact expected profit within
