@@ -27,6 +27,11 @@ class EnvConfig:
     low: Optional[list[float]] = None
     high: Optional[list[float]] = None
     truncation: str = "as_terminal"
+    # Facts of the problem, stated by each bundled env config; the top-level keys of the same
+    # names default to them (configs/train.yaml), and an override of the top-level key wins.
+    gamma: float = 0.99  # the discount of the environment's own objective (0.99 when a config states none)
+    eval_episodes: int = 200  # rollouts per evaluation: enough to rank runs, at about a second's cost
+    eval_every: int = 1000  # episodes between evaluations, so evaluating does not dominate a long run
 
 
 @dataclass
