@@ -43,15 +43,26 @@ def test_the_restocking_season_is_undiscounted_and_the_resolved_value_is_what_ge
     cfg = _compose("env=restock")
     # Params and config/resolved_config.yaml are written from the resolved config.
     resolved = OmegaConf.to_container(cfg, resolve=True)
-    assert resolved["gamma"] == 1.0 and resolved["eval_episodes"] == cfg.env.eval_episodes == 2000
+    assert resolved["gamma"] == 1.0 and resolved["eval_episodes"] == cfg.env.eval_episodes == 3000
 
 
 @pytest.mark.parametrize("name", BUNDLED)
 def test_every_bundled_config_states_its_own_facts(name):
     # Stated in the file itself, not inherited from the schema's fallback for unknown environments.
     text = OmegaConf.create((resources.files("qtally.configs") / "env" / f"{name}.yaml").read_text())
-    for key in ("gamma", "eval_episodes", "eval_every"):
+    for key in ("gamma", "eval_episodes", "eval_every", "eval_resolution"):
         assert key in text, f"configs/env/{name}.yaml states no {key}"
     assert 0.0 < text.gamma <= 1.0
     cfg = _compose(f"env={name}")
     assert (cfg.gamma, cfg.eval_episodes, cfg.eval_every) == (text.gamma, text.eval_episodes, text.eval_every)
+
+
+@pytest.mark.parametrize("name, return_sd_bound", [("blackjack", 1.0), ("frozen_lake_4x4", 0.5), ("frozen_lake_8x8", 0.5)])
+def test_bounded_returns_are_evaluated_finely_enough_for_any_policy(name, return_sd_bound):
+    # Returns in [-1, 1] (Blackjack) or {0, 1} (FrozenLake) have a standard deviation of at
+    # most 1 or 0.5 (Popoviciu's inequality), so the worst-case half-width is known before any
+    # run: the configured size must resolve the config's own eval_resolution under the
+    # summary's rule (sqrt(2) x half-width, see qtally.cli.train.ranking_note).
+    cfg = _compose(f"env={name}")
+    worst_half_width = 1.96 * return_sd_bound / cfg.eval_episodes**0.5
+    assert 2**0.5 * worst_half_width <= cfg.env.eval_resolution

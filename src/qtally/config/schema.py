@@ -32,6 +32,7 @@ class EnvConfig:
     gamma: float = 0.99  # the discount of the environment's own objective (0.99 when a config states none)
     eval_episodes: int = 200  # rollouts per evaluation: enough to rank runs, at about a second's cost
     eval_every: int = 1000  # episodes between evaluations, so evaluating does not dominate a long run
+    eval_resolution: Optional[float] = None  # smallest difference in mean return worth telling apart (the summary's ranking rule)
 
 
 @dataclass
