@@ -25,7 +25,7 @@ from .control.variants import make_variant
 from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
-from .control.streams import RandomStreams, evaluation_seeds
+from .control.streams import evaluation_base, evaluation_seeds
 from .trainer import TrainingOutcome, TrainingSettings, train
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
@@ -170,6 +170,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         truncation=cfg.env.truncation,
         initial_value=cfg.initial_value,
         step_cap=cfg.env.step_cap,
+        eval_seed=cfg.eval_seed,
     )
     progress = progress_factory(cfg.episodes) if progress_factory else None
     try:
@@ -202,7 +203,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         for picture in pictures:
             mlflow.log_artifact(str(picture), "plots")
         if cfg.rollout_animation:
-            animation, note = rollout_animation(environment.spec, outcome.artifact.actions, scratch_dir / "rollout.gif", seed=int(evaluation_seeds(RandomStreams(cfg.seed).evaluation_base, 1)[0]))
+            animation, note = rollout_animation(environment.spec, outcome.artifact.actions, scratch_dir / "rollout.gif", seed=int(evaluation_seeds(evaluation_base(cfg.seed, cfg.eval_seed), 1)[0]))
             mlflow.set_tag("qtally.rollout_animation", note)
             if animation is not None:
                 mlflow.log_artifact(str(animation), "plots")

@@ -26,7 +26,7 @@ from typing import Callable, Mapping, Protocol
 import numpy as np
 
 from .control.action_values import ActionValues
-from .control.streams import evaluation_seeds
+from .control.streams import evaluation_base, evaluation_seeds
 from .control.trainer_state import LogWindow, TrainerState
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
 from .engine.episodes import GymEpisodes
@@ -58,6 +58,7 @@ class TrainingSettings:
     truncation: str = "as_terminal"
     initial_value: float = 0.0
     step_cap: int | None = None  # None: derived from the table size (control/truncation.py)
+    eval_seed: int | None = None  # None: the evaluation stream of ``seed``; a number: shared by every run that names it
 
 
 @dataclass
@@ -107,7 +108,7 @@ class Trainer:
         elif self.state.episode == 0:
             self.episodes.seed(self.state.streams.env_seed)
         self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
-        self.eval_seeds = evaluation_seeds(self.state.streams.evaluation_base, settings.eval_episodes)
+        self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
 
     # ------------------------------------------------------------ pieces
 

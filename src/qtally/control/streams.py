@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["RandomStreams", "UniformDraws", "evaluation_seeds", "SEED_MODULUS"]
+__all__ = ["RandomStreams", "UniformDraws", "evaluation_base", "evaluation_seeds", "SEED_MODULUS"]
 
 SEED_MODULUS = 2**31 - 1  # seeds handed to environments stay in the 31-bit range every library accepts
 _BLOCK = 1024
@@ -61,6 +61,15 @@ class UniformDraws:
         self._block_start_state = self.generator.bit_generator.state
         self._block = self.generator.random(_BLOCK).tolist()
         self._position = int(state["position"])
+
+
+def evaluation_base(seed: int, eval_seed: int | None = None) -> int:
+    """Where a run's evaluation seeds start: the evaluation stream of ``eval_seed`` if given, else of ``seed``.
+
+    A sweep gives every run the same ``eval_seed``, so all its runs are evaluated on the
+    same episodes whatever their training seed.
+    """
+    return RandomStreams(seed if eval_seed is None else eval_seed).evaluation_base
 
 
 def evaluation_seeds(base: int, n: int) -> np.ndarray:
