@@ -1,9 +1,12 @@
 """`qtally-train` end to end through the command line, then the run read back with the MLflow client."""
 
+import math
+
 import numpy as np
 import pandas as pd
 import pytest
 from mlflow.tracking import MlflowClient
+from scipy import stats
 
 import mlflow
 
@@ -39,7 +42,13 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     assert steps == list(range(50, 601, 50))
     evaluations = client.get_metric_history(run_id, "eval_return_mean")
     assert [m.step for m in evaluations] == [300, 600]
-    assert all(0.0 <= m.value <= 1.0 for m in evaluations)
+    # 50 rollouts of 0/1 returns: each mean is k/50 and its interval is Student-t's for that k,
+    # so an evaluation of the wrong size or with the wrong interval shows here.
+    intervals = sorted(client.get_metric_history(run_id, "eval_return_ci95"), key=lambda m: m.step)
+    for mean, interval in zip(sorted(evaluations, key=lambda m: m.step), intervals):
+        k = round(mean.value * 50)
+        assert mean.value == pytest.approx(k / 50, abs=1e-12)
+        assert interval.value == pytest.approx(stats.t.ppf(0.975, 49) * math.sqrt(k * (50 - k) / (50 * 49)) / math.sqrt(50), rel=1e-9, abs=1e-12)
     for name in ("eval_return_ci95", "coverage_sa", "epsilon", "optimality_gap", "optimal_action_fraction"):
         assert client.get_metric_history(run_id, name), name
     # Artifacts.
@@ -70,7 +79,13 @@ def test_blackjack_model_takes_observation_parts_as_columns(run_cli, tmp_path):
     model = mlflow.pyfunc.load_model(f"runs:/{run.info.run_id}/policy")
     frame = pd.DataFrame({"player_sum": [21, 20, 5], "dealer_card": [10, 1, 7], "usable_ace": [0, 1, 0]})
     actions = model.predict(frame)
-    assert actions.shape == (3,) and set(actions.tolist()) <= {0, 1}
+    # The model answers with the saved policy's actions for those observations.
+    from qtally.policy.artifact import load_policy
+
+    local = mlflow.artifacts.download_artifacts(run_id=run.info.run_id, artifact_path="policy_file/policy.npz", dst_path=str(tmp_path / "dl"))
+    saved = load_policy(local)
+    encoder = saved.encoder()
+    np.testing.assert_array_equal(actions, [saved.actions[encoder.encode(tuple(int(v) for v in row))] for row in frame.to_numpy()])
     np.testing.assert_array_equal(model.predict(frame.to_numpy().tolist()), actions)
     with pytest.raises(Exception, match="3 column"):
         model.predict(np.array([[1, 2]]))
