@@ -25,6 +25,7 @@ from .control.variants import make_variant
 from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
+from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
 from .trainer import TrainingOutcome, TrainingSettings, train
 
@@ -118,6 +119,11 @@ def prepare(cfg: DictConfig):
     return variant, schedule, environment, evaluation_environment
 
 
+def run_name(cfg: DictConfig) -> str:
+    """``tracking.run_name``, else a readable one: variant, schedule, seed."""
+    return cfg.tracking.run_name or f"{cfg.variant.name} {cfg.schedule.kind} seed={cfg.seed}"
+
+
 def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSummary:
     """Train once and record the run; raises :class:`QtallyError` for input the user can fix."""
     variant, schedule, environment, evaluation_environment = prepare(cfg)
@@ -126,7 +132,8 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
     from .cli.console import quiet_libraries
 
     quiet_libraries()
-    uri = resolve_tracking_uri(cfg.tracking.uri)
+    sweep = current_sweep()
+    uri = sweep.tracking_uri if sweep else resolve_tracking_uri(cfg.tracking.uri)
     experiment = open_experiment(uri, cfg.tracking.experiment)
     probes, exact, exact_reason = _exact_probes(environment, cfg.gamma) if cfg.exact else ((), None, "exact=false")
 
@@ -136,10 +143,11 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
         "schedule": cfg.schedule.kind,
         "seed": str(cfg.seed),
         "qtally.exact_metrics": "yes" if exact else f"no: {exact_reason}"[:250],
+        **(child_tags(cfg, sweep) if sweep else {}),
     }
     client = MlflowClient()
     try:
-        with recorded_run(cfg, cfg.tracking.run_name, tags) as run_id:
+        with recorded_run(cfg, run_name(cfg), tags) as run_id:
             if announce:
                 announce(run_id)
             outcome = _train_and_record(cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory)

@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import math
+import sys
 
 import hydra
 from omegaconf import DictConfig
 
 from ..config.schema import register_schema
-from .console import TrainingProgress, pre_check_overrides, quiet_libraries, run_reporting_errors
+from .console import TrainingProgress, fail, pre_check_overrides, quiet_libraries, run_reporting_errors
 
 PROGRAM = "qtally-train"
 
@@ -42,9 +43,12 @@ def ranking_note(half_width: float, episodes: int, resolution: float | None) -> 
 
 
 @hydra.main(version_base="1.3", config_path="pkg://qtally.configs", config_name="train")
-def _train(cfg: DictConfig) -> None:
+def _train(cfg: DictConfig) -> str | float | None:
     from ..experiment import run_training
+    from ..tracking.sweep import current_sweep
 
+    if current_sweep() is not None:
+        return _sweep_job(cfg)
     progress = None if cfg.quiet else TrainingProgress
     summary = run_reporting_errors(PROGRAM, lambda: run_training(cfg, progress_factory=progress))
     if cfg.quiet:
@@ -56,15 +60,72 @@ def _train(cfg: DictConfig) -> None:
             line += f"  optimality_gap={evaluation['optimality_gap']:.4g}  optimal_action_fraction={evaluation['optimal_action_fraction']:.3f}"
         print(f"run {summary.run_id} finished: {line}")
         print(f"  evaluation:   {ranking_note(evaluation.get('eval_return_ci95', float('nan')), cfg.eval_episodes, cfg.env.get('eval_resolution'))}")
+        if summary.outcome.capped_episodes:
+            print(f"  step cap:     {summary.outcome.capped_episodes} episode(s) reached env.step_cap={summary.outcome.step_cap} and were cut (treated as env.truncation={cfg.env.truncation})")
         print(f"  policy model: runs:/{summary.run_id}/policy")
         print(f"  tracking UI:  mlflow ui --backend-store-uri {summary.tracking_uri} --host 127.0.0.1")
+    return summary.run_id
+
+
+def _sweep_job(cfg: DictConfig) -> float:
+    """One job of a sweep: one run per seed (``repeat_seeds``, else ``seed``), each a child of the sweep.
+
+    A failure is recorded on its own child run with its reason and the sweep goes on. The
+    return value, the mean final ``eval_return_mean`` over the seeds (NaN if one failed), is
+    what a search such as the Optuna sweeper maximises.
+    """
+    from omegaconf import OmegaConf
+
+    seeds = [int(s) for s in cfg.repeat_seeds] if cfg.get("repeat_seeds") else [int(cfg.seed)]
+    finals = []
+    for seed in seeds:
+        job = cfg.copy()
+        OmegaConf.update(job, "seed", seed)
+        finals.append(_one_sweep_run(job))
+    return sum(finals) / len(finals)
+
+
+def _one_sweep_run(cfg: DictConfig) -> float:
+    from ..errors import QtallyError, first_line
+    from ..experiment import run_name, run_training
+    from ..tracking.sweep import current_sweep, record_failed_job
+
+    opened: list[str] = []
+    try:
+        summary = run_training(cfg, announce=opened.append)
+    except QtallyError as exc:
+        reason = str(exc)
+    except Exception as exc:  # a job that breaks while running: recorded, reported, the sweep continues
+        reason = f"{type(exc).__name__}: {first_line(exc)}"
+    else:
+        final = float(summary.final_evaluation.get("eval_return_mean", float("nan")))
+        print(f"{PROGRAM}: job {run_name(cfg)}: run {summary.run_id} finished, eval_return_mean={final:.4g}")
+        return final
+    if not opened:
+        record_failed_job(cfg, current_sweep(), run_name(cfg), {"variant": cfg.variant.name, "schedule": cfg.schedule.kind, "seed": str(cfg.seed)}, reason)
+    print(f"{PROGRAM}: job {run_name(cfg)} failed: {reason}", file=sys.stderr)
+    return float("nan")
 
 
 def main() -> None:
     from ..config.schema import EnvConfig, ScheduleConfig, TrainConfig, VariantConfig
+    from ..sweep_check import first_bad_job, is_sweep
+    from ..tracking.sweep import close_open_sweep, sweep_failures
 
     quiet_libraries()
     register_schema()
     schema = TrainConfig(env=EnvConfig(), variant=VariantConfig(), schedule=ScheduleConfig())
     pre_check_overrides(PROGRAM, schema, ("env", "variant", "schedule"), "configs/train.yaml")
-    _train()
+    if is_sweep(sys.argv[1:]):
+        problem = first_bad_job(sys.argv[1:])
+        if problem:
+            fail(PROGRAM, f"{problem} (nothing was started)")
+    try:
+        _train()
+    finally:
+        close_open_sweep("KILLED")  # only a sweep cut short leaves its parent open
+    failures = sweep_failures()
+    if failures:
+        for line in failures:
+            print(f"{PROGRAM}: {line}", file=sys.stderr)
+        fail(PROGRAM, f"{len(failures)} job(s) of the sweep failed; the other jobs' runs are recorded", code=1)

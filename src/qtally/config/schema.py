@@ -71,6 +71,7 @@ class TrainConfig:
     episodes: int = 5000
     gamma: float = 0.99
     seed: int = 0
+    repeat_seeds: Optional[list[int]] = None  # in a sweep, train each job once per seed listed (seed-averaged searches)
     eval_seed: Optional[int] = 0  # evaluation episodes' seed, independent of seed; null: derived from seed
     log_every: int = 100
     eval_every: int = 1000

@@ -14,7 +14,7 @@ from typing import Iterator, Mapping
 
 from omegaconf import DictConfig, OmegaConf
 
-from ..errors import QtallyError
+from ..errors import QtallyError, first_line
 
 __all__ = ["DEFAULT_TRACKING_URI", "resolve_tracking_uri", "open_experiment", "recorded_run", "flatten_config", "log_config"]
 
@@ -26,12 +26,37 @@ def resolve_tracking_uri(configured: str | None) -> str:
     return configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
 
 
+@contextlib.contextmanager
+def _store_creation_lock(uri: str) -> Iterator[None]:
+    """Serialise opening a SQLite store across processes.
+
+    Parallel jobs that open a brand-new SQLite file at the same moment race to create its
+    tables (schema migrations) and the experiment; an exclusive lock on a file beside the
+    database lets one process create them while the others wait, then find them made.
+    """
+    prefix = "sqlite:///"
+    if not uri.startswith(prefix):
+        yield
+        return
+    import fcntl
+
+    database = Path(uri[len(prefix):])
+    database.parent.mkdir(parents=True, exist_ok=True)
+    with open(database.with_name(database.name + ".lock"), "a") as handle:
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
 def open_experiment(uri: str, experiment: str):
     import mlflow
 
     try:
-        mlflow.set_tracking_uri(uri)
-        return mlflow.set_experiment(experiment)
+        with _store_creation_lock(uri):
+            mlflow.set_tracking_uri(uri)
+            return mlflow.set_experiment(experiment)
     except Exception as exc:  # a bad URI or an unreachable store: say so in one line
         first = str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__
         raise QtallyError(f"tracking.uri={uri!r}: cannot open the MLflow store ({first})") from None
@@ -69,6 +94,10 @@ def recorded_run(cfg: DictConfig, run_name: str | None, tags: Mapping[str, str])
         status = "FINISHED"
     except KeyboardInterrupt:
         status = "KILLED"
+        raise
+    except BaseException as exc:
+        with contextlib.suppress(Exception):  # the reason is a courtesy; the status below is what matters
+            mlflow.set_tag("qtally.failure", f"{type(exc).__name__}: {first_line(exc)}"[:500])
         raise
     finally:
         mlflow.end_run(status=status)
