@@ -64,7 +64,7 @@ def _exact_probes(environment: TabularEnvironment, gamma: float):
     """Exact optimality metrics where the environment exposes a model; () and a reason otherwise."""
     from .envs.model import NoModelError
     from .envs.model_extraction import model_of
-    from .evaluate.exact import ImproperPolicyError, NotConvergedError, optimal_action_fraction, optimality_gap, value_iteration
+    from .evaluate.exact import ImproperPolicyError, NotConvergedError, greedy_regret, optimal_action_fraction, optimality_gap, value_iteration
 
     try:
         model = model_of(environment.env)
@@ -80,6 +80,7 @@ def _exact_probes(environment: TabularEnvironment, gamma: float):
             "optimality_gap": float(gap.gap),
             "greedy_expected_return": float(gap.greedy_start_value),
             "optimal_action_fraction": float(optimal_action_fraction(model, q, solution.q_star)),
+            "greedy_regret": float(greedy_regret(model, q, solution.q_star, gamma)),
         }
 
     return (probe,), (model, solution), None
