@@ -11,8 +11,8 @@ Pure array code (numpy, scipy); no tracking or config imports.
   learned Q table; :func:`value_scale` and :func:`state_occupancy` are what the last two weigh with.
 
 Policies are ``(n_states, n_actions)`` probability arrays; :func:`greedy_policy_probs` and
-:func:`epsilon_soft_probs` build them. Greedy choices break ties to the lowest action index,
-as ``np.argmax`` does.
+:func:`epsilon_soft_probs` build them with qtally's one tie rule (the lowest action index,
+:mod:`qtally.policy.table_policy`), the same rule training acts with.
 
 Terminal states have value 0 by definition. With ``gamma == 1`` a value exists only where
 the episode ends with probability 1; see :func:`policy_evaluation` for what happens elsewhere.
@@ -27,7 +27,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order
 from scipy.sparse.linalg import spsolve
 
-from qtally.control.action_values import greedy_actions
+from qtally.policy.table_policy import deterministic_probabilities, epsilon_soft_probabilities, greedy_actions
 from qtally.envs.model import TabularModel
 
 __all__ = [
@@ -84,10 +84,7 @@ def greedy_policy_probs(actions: np.ndarray, n_actions: int) -> np.ndarray:
     >>> greedy_policy_probs(np.array([2, 0]), 3).tolist()
     [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]]
     """
-    actions = np.asarray(actions, dtype=np.int64)
-    probs = np.zeros((actions.shape[0], n_actions))
-    probs[np.arange(actions.shape[0]), actions] = 1.0
-    return probs
+    return deterministic_probabilities(actions, n_actions)
 
 
 def epsilon_soft_probs(q: np.ndarray, epsilon: float) -> np.ndarray:
@@ -96,12 +93,7 @@ def epsilon_soft_probs(q: np.ndarray, epsilon: float) -> np.ndarray:
     >>> epsilon_soft_probs(np.array([[0.0, 3.0, 3.0]]), 0.3).round(3).tolist()
     [[0.1, 0.8, 0.1]]
     """
-    if not 0.0 <= epsilon <= 1.0:
-        raise ValueError(f"epsilon must be in [0, 1], got {epsilon}")
-    q = np.asarray(q, dtype=float)
-    probs = np.full(q.shape, epsilon / q.shape[1])
-    probs[np.arange(q.shape[0]), np.argmax(q, axis=1)] += 1.0 - epsilon
-    return probs
+    return epsilon_soft_probabilities(q, epsilon)
 
 
 def _check_policy(model: TabularModel, policy_probs: np.ndarray) -> np.ndarray:
@@ -362,7 +354,7 @@ def optimality_gap(
     if v_star is None:
         v_star = value_iteration(model, gamma).v_star
     optimal = start_value(model, v_star)
-    greedy = greedy_policy_probs(np.argmax(np.asarray(q_table), axis=1), model.n_actions)
+    greedy = greedy_policy_probs(greedy_actions(q_table), model.n_actions)
     try:
         greedy_value = start_value(model, policy_evaluation(model, greedy, gamma))
     except ImproperPolicyError:
