@@ -10,9 +10,10 @@ FAILED/KILLED if anything goes wrong on the way.
 Where the environment exposes its model, each estimate is put beside the exact value of
 the same target policy (:func:`qtally.evaluate.exact.policy_evaluation`, and
 :func:`~qtally.evaluate.exact.q_from_v` for Q) and its error is expressed in standard
-errors. ``err/se`` is infinite where every sampled return was the same (standard error 0)
-yet the exact value differs: too few visits to have seen the rarer outcomes, which the
-summary metric ``max_error_in_se`` then shows rather than hides. The model ignores time
+errors; the report arithmetic (which estimates are flagged as worth too few effective
+visits, the summary metrics, the CSV) is :mod:`qtally.evaluate.prediction_report`, and no
+infinite value is ever logged (``max_error_in_se`` is left out and
+``entries_infinite_error_in_se`` counts the entries instead). The model ignores time
 limits; an episode cut by one is handled as ``env.truncation`` says (``bootstrap`` seeds
 the cut with the current estimate).
 """
@@ -20,7 +21,6 @@ the cut with the current estimate).
 from __future__ import annotations
 
 import contextlib
-import csv
 import math
 import os
 import tempfile
@@ -41,6 +41,7 @@ from .evaluate.prediction import (
     check_coverage,
     play_prediction_episodes,
 )
+from .evaluate.prediction_report import ReportRow, prediction_report, write_csv
 from .errors import QtallyError
 from .experiment import environment_spec
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
@@ -64,7 +65,6 @@ __all__ = [
     "run_prediction",
     "policy_table",
     "prediction_report",
-    "format_report",
     "POLICY_SOURCES",
 ]
 
@@ -73,9 +73,6 @@ ESTIMATE_CHOICES = ("v", "q", "both")
 IMPORTANCE_SAMPLING_CHOICES = ("ordinary", "weighted", "both")
 EXPLORING_CHOICES = ("none", "states", "pairs")
 TRUNCATION_CHOICES = ("bootstrap", "as_terminal", "discard")
-TABLE_ROWS = 20
-
-
 @dataclass(frozen=True)
 class PolicyTable:
     """A policy as an ``(S, A)`` probability table, with where it came from."""
@@ -103,22 +100,6 @@ class PredictionPlan:
     exact_v: np.ndarray | None
     exact_q: np.ndarray | None
     exact_reason: str | None
-
-
-@dataclass(frozen=True)
-class ReportRow:
-    kind: str  # v or q
-    method: str  # on_policy, ordinary or weighted
-    state: int
-    observation: str
-    action: int | None
-    estimate: float
-    standard_error: float
-    visits: int
-    effective_visits: float
-    exact: float
-    error: float
-    error_in_se: float
 
 
 @dataclass
@@ -406,152 +387,6 @@ def prepare_prediction(cfg: DictConfig) -> PredictionPlan:
     )
 
 
-# ---------------------------------------------------------------- the report
-
-
-def _error_in_se(error: np.ndarray, se: np.ndarray) -> np.ndarray:
-    """``|error| / se``; 0 where both vanish (a deterministic return), inf where only se does."""
-    magnitude = np.abs(error)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = magnitude / se
-    ratio = np.where((se == 0) & (magnitude <= 1e-12), 0.0, ratio)
-    return np.where((se == 0) & (magnitude > 1e-12), np.inf, ratio)
-
-
-def prediction_report(
-    environment: TabularEnvironment,
-    estimates: dict[tuple[str, str], Estimates],
-    exact_v: np.ndarray | None,
-    exact_q: np.ndarray | None,
-    min_visits: int,
-) -> tuple[list[ReportRow], dict[str, float]]:
-    """One row per visited entry, and the summary metrics over entries with ``>= min_visits`` visits.
-
-    Metrics per estimate ``{kind}_{method}_{name}``; the headline (V if estimated, else Q;
-    weighted IS where there is a choice) is also logged without the prefix.
-    """
-    rows: list[ReportRow] = []
-    metrics: dict[str, float] = {}
-    describe = environment.encoder.describe
-    for (kind, method), est in estimates.items():
-        exact = exact_v if kind == "v" else exact_q
-        value, se = est.value.reshape(-1), est.standard_error.reshape(-1)
-        visits, effective = est.visits.reshape(-1), est.effective_visits.reshape(-1)
-        truth = exact.reshape(-1) if exact is not None else np.full(value.shape, np.nan)
-        error = value - truth
-        in_se = _error_in_se(error, se)
-        width = 1 if kind == "v" else environment.n_actions
-        for entry in np.flatnonzero(visits > 0):
-            state, action = divmod(int(entry), width)
-            rows.append(
-                ReportRow(
-                    kind=kind, method=method, state=state, observation=describe(state),
-                    action=None if kind == "v" else action,
-                    estimate=float(value[entry]), standard_error=float(se[entry]), visits=int(visits[entry]),
-                    effective_visits=float(effective[entry]), exact=float(truth[entry]), error=float(error[entry]),
-                    error_in_se=float(in_se[entry]),
-                )
-            )
-        # Weighted IS: a visit whose ratio is 0 carries no information, so the threshold
-        # applies to the effective number of visits there.
-        enough = effective if method == "weighted" else visits
-        counted = (enough >= max(min_visits, 1)) & np.isfinite(value)
-        prefix = f"{kind}_{method}_"
-        metrics[prefix + "entries_estimated"] = float(counted.sum())
-        compared = counted & np.isfinite(truth) & np.isfinite(se)
-        if exact is not None:
-            metrics[prefix + "entries_compared"] = float(compared.sum())
-            if compared.any():
-                metrics[prefix + "max_abs_error"] = float(np.abs(error[compared]).max())
-                metrics[prefix + "mean_abs_error"] = float(np.abs(error[compared]).mean())
-                metrics[prefix + "max_error_in_se"] = float(in_se[compared].max())
-        states = counted if kind == "v" else counted.reshape(-1, environment.n_actions).any(axis=1)
-        metrics[prefix + "states_estimated"] = float(states.sum())
-    if estimates:
-        kinds = {k for k, _ in estimates}
-        methods = {m for _, m in estimates}
-        kind = "v" if "v" in kinds else "q"
-        method = "on_policy" if "on_policy" in methods else ("weighted" if "weighted" in methods else "ordinary")
-        prefix = f"{kind}_{method}_"
-        for name in ("max_abs_error", "mean_abs_error", "max_error_in_se", "states_estimated", "entries_compared"):
-            if prefix + name in metrics:
-                metrics[name] = metrics[prefix + name]
-    return rows, metrics
-
-
-def _write_csv(rows: list[ReportRow], path: Path) -> Path:
-    def number(x: float) -> str:
-        return "" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{x:.8g}"
-
-    with path.open("w", newline="") as stream:
-        writer = csv.writer(stream)
-        writer.writerow(["kind", "method", "state", "observation", "action", "estimate", "standard_error", "visits", "effective_visits", "exact", "error", "error_in_se"])
-        for r in rows:
-            writer.writerow([
-                r.kind, r.method, r.state, r.observation, "" if r.action is None else r.action,
-                number(r.estimate), number(r.standard_error), r.visits, number(r.effective_visits),
-                number(r.exact), number(r.error), number(r.error_in_se),
-            ])
-    return path
-
-
-def _enough(row: ReportRow, min_visits: int) -> bool:
-    count = row.effective_visits if row.method == "weighted" else row.visits
-    return count >= max(min_visits, 1) and math.isfinite(row.estimate)
-
-
-def shown_rows(rows: list[ReportRow], min_visits: int, has_exact: bool, limit: int = TABLE_ROWS) -> list[ReportRow]:
-    """The rows worth printing: the worst errors when exact values exist, else the most visited."""
-    eligible = [r for r in rows if _enough(r, min_visits)]
-    if has_exact:
-        eligible = [r for r in eligible if math.isfinite(r.exact)]
-        eligible.sort(key=lambda r: (-abs(r.error), -r.error_in_se if math.isfinite(r.error_in_se) else -math.inf))
-    else:
-        eligible.sort(key=lambda r: (-r.visits, r.kind, r.method, r.state, r.action or 0))
-    return eligible[:limit]
-
-
-def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
-    """The compact table printed on standard output, then the summary line."""
-    plan = summary.plan
-    has_exact = plan.exact_v is not None
-    eligible = sum(1 for r in summary.rows if _enough(r, summary.min_visits))
-    shown = shown_rows(summary.rows, summary.min_visits, has_exact, limit)
-    playing = "on-policy" if plan.behaviour is None else f"off-policy from behaviour [{plan.behaviour.label}]"
-    lines = [
-        f"prediction of [{plan.target.label}] on {plan.environment.spec.id}: {summary.episodes} episodes, "
-        f"{'first' if summary.first_visit else 'every'}-visit, {playing}"
-    ]
-    width = max([len(r.observation) for r in shown] + [11])
-    off_policy = plan.behaviour is not None
-    header = f"  {'kind':<4} {'method':<9} {'observation':<{width}} {'action':>6} {'estimate':>10} {'± se':>9} {'visits':>8}"
-    if off_policy:
-        header += f" {'eff.':>8}"
-    if has_exact:
-        header += f" {'exact':>10} {'error':>10} {'err/se':>7}"
-    lines.append(header)
-    for r in shown:
-        action = "-" if r.action is None else str(r.action)
-        line = f"  {r.kind:<4} {r.method:<9} {r.observation:<{width}} {action:>6} {r.estimate:>10.4f} {r.standard_error:>9.4f} {r.visits:>8d}"
-        if off_policy:
-            line += f" {r.effective_visits:>8.1f}"
-        if has_exact:
-            line += f" {r.exact:>10.4f} {r.error:>+10.4f} {r.error_in_se:>7.2f}"
-        lines.append(line)
-    order = "largest error first" if has_exact else "most visited first"
-    counted = "visits (effective visits for weighted IS)" if off_policy else "visits"
-    lines.append(f"  ({len(shown)} of {eligible} entries with >= {max(summary.min_visits, 1)} {counted}; {order})")
-    m = summary.metrics
-    facts = [f"states_estimated={int(m.get('states_estimated', 0))}"]
-    for name in ("max_abs_error", "mean_abs_error", "max_error_in_se"):
-        if name in m:
-            facts.append(f"{name}={m[name]:.4g}")
-    if not has_exact:
-        facts.append(f"no exact values: {plan.exact_reason}")
-    lines.append("summary: " + "  ".join(facts))
-    return "\n".join(lines)
-
-
 # ---------------------------------------------------------------- the run
 
 
@@ -632,11 +467,11 @@ def run_prediction(cfg: DictConfig, progress_factory: Callable[[int], Any] | Non
                 "truncated_fraction": played.truncated / max(played.episodes, 1),
                 "steps": float(played.steps),
             })
-            mlflow.log_metrics({k: v for k, v in metrics.items() if not math.isnan(v)})
+            mlflow.log_metrics({k: v for k, v in metrics.items() if math.isfinite(v)})  # the report never makes inf; NaN means no value
             with tempfile.TemporaryDirectory(prefix="qtally-prediction-") as scratch:
                 scratch_dir = Path(scratch)
                 log_config(cfg, scratch_dir)
-                mlflow.log_artifact(str(_write_csv(rows, scratch_dir / "prediction.csv")), "tables")
+                mlflow.log_artifact(str(write_csv(rows, scratch_dir / "prediction.csv")), "tables")
                 for picture in _pictures(plan, estimates, scratch_dir / "maps"):
                     mlflow.log_artifact(str(picture), "plots")
     finally:

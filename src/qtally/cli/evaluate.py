@@ -13,7 +13,8 @@ PROGRAM = "qtally-evaluate"
 
 @hydra.main(version_base="1.3", config_path="pkg://qtally.configs", config_name="evaluate")
 def _evaluate(cfg: DictConfig) -> None:
-    from ..prediction_run import format_report, run_prediction
+    from ..prediction_run import run_prediction
+    from .prediction_table import format_report
 
     progress = None if cfg.quiet else PredictionProgress
     summary = run_reporting_errors(PROGRAM, lambda: run_prediction(cfg, progress_factory=progress))

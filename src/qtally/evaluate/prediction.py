@@ -1,40 +1,60 @@
 """Monte Carlo prediction: the values of a *given* policy, estimated from sampled episodes.
 
 Pure array code (numpy); no tracking or config imports. Where control improves a policy,
-prediction only measures one, so every estimate here carries a standard error and a visit
-count: it is a sample mean, and the reader should see how much to trust it.
+prediction only measures one, so every estimate here carries a standard error, a visit
+count and an effective sample size: the reader should see how much to trust it.
 
-- :class:`Tally`: per-entry count, mean and centred sum of squares (Welford's running
-  moments; a batch is folded in with the pairwise form of Chan, Golub & LeVeque 1979).
-  ``standard_error = sd / sqrt(n)`` with the sample (n - 1) standard deviation.
-- :class:`WeightedTally`: per-entry ``sum w``, the weighted mean ``sum w x / sum w`` and the
-  centred sums a delta-method standard error needs (see below).
+- :class:`RatioTally`: per-entry ratio estimate over episodes with its standard error and
+  effective sample size; the one mechanism behind every estimator below.
 - :func:`episode_samples`: returns, visit masks and importance-sampling ratios of one episode.
 - :class:`OnPolicyPrediction`: V(s) and Q(s, a) of the policy that played the episodes.
 - :class:`ImportanceSamplingPrediction`: V and Q of a *target* policy from episodes of a
-  *behaviour* policy, by ordinary IS (mean of ``rho * G``) and weighted IS
+  *behaviour* policy, by ordinary IS (``rho * G`` averaged over visits) and weighted IS
   (``sum rho G / sum rho``) side by side.
 - :func:`play_prediction_episodes`: play N episodes of a policy table in a
   :class:`~qtally.envs.factory.TabularEnvironment` and feed them to an estimator.
 
-Memory is O(|S| |A|) whatever the number of episodes: samples are folded into the running
-sums in batches and then dropped.
+Every estimate is a ratio over episodes. Episodes are independent; the visits inside one
+episode are not (an every-visit average sees the same future several times, and a
+per-visit standard error would be too small: on FrozenLake its nominal 95% intervals
+covered about 80%). So each estimator sums, per entry and per episode ``i``, a numerator
+``X_i`` and a denominator ``N_i`` over the visits it counts (the first, or every one)::
+
+    estimator      X_i                  N_i
+    on-policy      sum of G_t           visits in the episode
+    ordinary IS    sum of rho_t G_t     visits in the episode
+    weighted IS    sum of rho_t G_t     sum of rho_t
+
+The estimate is ``R = sum_i X_i / sum_i N_i`` and its standard error the delta-method
+(linearised) one of a ratio estimator with episodes as the sampling units::
+
+    se(R) = sqrt(sum_i (X_i - R N_i)^2) / sum_i N_i * sqrt(m / (m - 1))
+
+with ``m`` the number of episodes where ``N_i > 0``. This is the ratio estimator of survey
+sampling, an episode being a cluster of visits of unequal size (Cochran 1977, *Sampling
+Techniques*, 3rd ed., chapter 6 on ratio estimators and chapter 9 on cluster samples;
+chapter numbers recalled from memory), and for weighted IS the usual standard error of
+self-normalised importance sampling (Owen 2013, *Monte Carlo theory, methods and
+examples*, section 9.2). For first-visit on-policy averaging (``X_i = G_i``, ``N_i = 1``)
+it is exactly ``sd / sqrt(n)`` with the (n - 1) standard deviation; the factor
+``m / (m - 1)`` makes it so.
+
+Effective sample size. Kish's ``(sum_i W_i)^2 / sum_i W_i^2`` over episodes, where ``W_i``
+is the episode's weight: ``sum rho_t`` for both IS methods, the visit count on-policy (so
+it is the visit count for first-visit averaging, and the number of episodes it is worth
+for every-visit). It says how many equally weighted episodes an estimate is worth; when a
+few heavy weights dominate, the delta-method interval is not to be trusted, and the report
+(:mod:`qtally.evaluate.prediction_report`) flags the estimate.
+
+Memory is O(|S| |A|) whatever the number of episodes: per-visit samples are buffered,
+summed per episode and entry, folded into running sums centred at the current estimate
+(so no large uncentred sums are ever subtracted), then dropped. Reading an estimate, or
+:meth:`~OnPolicyPrediction.value_of`, folds the buffer first, so it reflects every episode
+added so far.
 
 Importance-sampling ratios. For a visit at time ``t`` the return ``G_t`` is reweighted by
 ``rho = prod_k pi(a_k | s_k) / b(a_k | s_k)``, over ``k = t .. T-1`` for V(s_t) and over
 ``k = t+1 .. T-1`` for Q(s_t, a_t) (the action at ``t`` is given, so it is not reweighted).
-
-Standard error of weighted IS. The weighted estimate ``R = sum w x / sum w`` is a ratio of
-two sample means, so its standard error is taken from the delta method (the linearised
-ratio, as for self-normalised importance sampling, e.g. Owen 2013, "Monte Carlo theory,
-methods and examples", section 9.2)::
-
-    Var(R) ~= sum_i w_i^2 (x_i - R)^2 / (sum_i w_i)^2  *  m / (m - 1)
-
-where ``m`` is the number of visits with ``w > 0``. The factor ``m / (m - 1)`` makes it equal
-the ordinary ``sd / sqrt(n)`` when all weights are equal. It is an approximation that is
-poor when few weights dominate; :attr:`Estimates.effective_visits` reports Kish's effective
-sample size ``(sum w)^2 / sum w^2`` so a reader can see when that happens.
 
 >>> p = OnPolicyPrediction(n_states=2, n_actions=1, gamma=1.0)
 >>> p.add_episode(np.array([0, 1]), np.array([0, 0]), np.array([1.0, 2.0]))
@@ -49,15 +69,13 @@ sample size ``(sum w)^2 / sum w^2`` so a reader can see when that happens.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Protocol, Sequence
 
 import numpy as np
 
 from ..control.returns import discounted_returns, visit_mask
 
 __all__ = [
-    "Tally",
-    "WeightedTally",
+    "RatioTally",
     "Estimates",
     "EpisodeSamples",
     "episode_samples",
@@ -66,7 +84,6 @@ __all__ = [
     "check_coverage",
     "PlayedSummary",
     "play_prediction_episodes",
-    "prediction_streams",
     "IS_METHODS",
 ]
 
@@ -76,162 +93,116 @@ IS_METHODS = ("ordinary", "weighted")
 _FLUSH_AT = 65_536
 
 
-# ---------------------------------------------------------------- running moments
+# ---------------------------------------------------------------- the ratio estimator
 
 
-class Tally:
-    """Per-entry count, mean and centred sum of squares ``M2`` of the values added.
+class RatioTally:
+    """Per-entry ratio ``R = sum_i X_i / sum_i N_i`` over episodes, with its delta-method standard error.
 
-    >>> t = Tally(3)
-    >>> t.add(np.array([0, 0, 2]), np.array([1.0, 3.0, 5.0]))
-    >>> t.add(np.array([0]), np.array([5.0]))
-    >>> t.count.tolist(), t.mean.tolist(), t.m2.tolist()
-    ([3, 0, 1], [3.0, 0.0, 5.0], [8.0, 0.0, 0.0])
-    >>> t.standard_error.round(4).tolist()[0]
-    1.1547
+    Each row added is one episode's sums for one entry (an entry may appear in many rows).
+    Keeps ``D = sum N_i`` and, centred at the current ``R``: ``A = sum N_i (X_i - R N_i)``,
+    ``B = sum N_i^2`` and ``C = sum (X_i - R N_i)^2``. When ``R`` moves by ``-d`` every
+    residual grows by ``d N_i``, so the centred sums shift exactly (``C += 2 d A + d^2 B``,
+    ``A += d B``) and batches merge without subtracting large uncentred sums.
+
+    An entry visited twice in one episode (returns 6 and 3) and once in another (return 0),
+    every-visit: the ratio standard error is 2, the per-visit ``sd / sqrt(3)`` would be 1.73.
+
+    >>> t = RatioTally(1)
+    >>> t.add(np.array([0, 0]), numerators=np.array([9.0, 0.0]), denominators=np.array([2.0, 1.0]), visits=np.array([2, 1]))
+    >>> float(t.estimate()[0]), float(t.standard_error[0]), int(t.visits[0]), int(t.episodes[0])
+    (3.0, 2.0, 3, 2)
+    >>> round(float(t.effective_size[0]), 3)
+    1.8
     """
 
     def __init__(self, size: int):
-        self.count = np.zeros(size, dtype=np.int64)
-        self.mean = np.zeros(size)
-        self.m2 = np.zeros(size)
+        self.visits = np.zeros(size, dtype=np.int64)  # samples (visits counted), zero weight or not
+        self.episodes = np.zeros(size, dtype=np.int64)  # m: episodes with N_i > 0
+        self.denominator_sum = np.zeros(size)  # D
+        self.ratio = np.zeros(size)  # R
+        self.centred_cross = np.zeros(size)  # A
+        self.square_denominator_sum = np.zeros(size)  # B
+        self.centred_square = np.zeros(size)  # C
 
-    def add(self, indices: np.ndarray, values: np.ndarray) -> None:
-        """Fold a batch in: two-pass moments of the batch, then the pairwise merge."""
-        indices = np.asarray(indices, dtype=np.int64)
-        values = np.asarray(values, dtype=np.float64)
-        if indices.size == 0:
+    def add(self, entries: np.ndarray, numerators: np.ndarray, denominators: np.ndarray, visits: np.ndarray | None = None) -> None:
+        """Fold in rows of per-episode sums: the batch's own ratio and centred sums, then the exact merge."""
+        entries = np.asarray(entries, dtype=np.int64)
+        x = np.asarray(numerators, dtype=np.float64)
+        n = np.asarray(denominators, dtype=np.float64)
+        if entries.size == 0:
             return
-        entries, inverse = np.unique(indices, return_inverse=True)
-        n_b = np.bincount(inverse).astype(np.float64)
-        mean_b = np.bincount(inverse, values) / n_b
-        m2_b = np.bincount(inverse, (values - mean_b[inverse]) ** 2)
-        n_a = self.count[entries].astype(np.float64)
-        mean_a = self.mean[entries]
-        n = n_a + n_b
-        delta = mean_b - mean_a
-        self.mean[entries] = mean_a + delta * n_b / n
-        self.m2[entries] += m2_b + delta**2 * n_a * n_b / n
-        self.count[entries] += n_b.astype(np.int64)
-
-    @property
-    def variance(self) -> np.ndarray:
-        """Sample variance (n - 1 denominator); NaN below two samples."""
-        n = self.count
+        if (n < 0).any():
+            raise ValueError("denominators (visit counts, importance weights) must be non-negative")
+        visits = np.ones(entries.size, dtype=np.int64) if visits is None else np.asarray(visits, dtype=np.int64)
+        unique, inverse = np.unique(entries, return_inverse=True)
+        size = unique.size
+        d_b = np.bincount(inverse, n, minlength=size)
         with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(n >= 2, self.m2 / np.maximum(n - 1, 1), np.nan)
+            r_b = np.where(d_b > 0, np.bincount(inverse, x, minlength=size) / d_b, 0.0)
+        resid = x - r_b[inverse] * n
+        a_b = np.bincount(inverse, n * resid, minlength=size)
+        b_b = np.bincount(inverse, n * n, minlength=size)
+        c_b = np.bincount(inverse, resid * resid, minlength=size)
+
+        d_a, r_a = self.denominator_sum[unique], self.ratio[unique]
+        a_a, b_a, c_a = self.centred_cross[unique], self.square_denominator_sum[unique], self.centred_square[unique]
+        d = d_a + d_b
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = np.where(d > 0, (d_a * r_a + d_b * r_b) / d, 0.0)
+        shift_a, shift_b = r_a - r, r_b - r
+        self.centred_square[unique] = c_a + 2 * shift_a * a_a + shift_a**2 * b_a + c_b + 2 * shift_b * a_b + shift_b**2 * b_b
+        self.centred_cross[unique] = a_a + shift_a * b_a + a_b + shift_b * b_b
+        self.square_denominator_sum[unique] = b_a + b_b
+        self.denominator_sum[unique] = d
+        self.ratio[unique] = r
+        self.visits[unique] += np.bincount(inverse, visits, minlength=size).astype(np.int64)
+        self.episodes[unique] += np.bincount(inverse, (n > 0).astype(np.float64), minlength=size).astype(np.int64)
 
     @property
     def standard_error(self) -> np.ndarray:
-        """``sd / sqrt(n)``; NaN below two samples."""
+        """Delta-method ratio standard error (module docstring); NaN below two contributing episodes."""
+        m = self.episodes
         with np.errstate(invalid="ignore", divide="ignore"):
-            return np.sqrt(self.variance / np.maximum(self.count, 1))
-
-    def estimate(self) -> np.ndarray:
-        """The mean, NaN where nothing was added."""
-        return np.where(self.count > 0, self.mean, np.nan)
-
-
-class WeightedTally:
-    """Per-entry weighted mean ``sum w x / sum w`` with a delta-method standard error.
-
-    Keeps, centred at the current weighted mean ``R``: ``A = sum w^2 (x - R)``,
-    ``B = sum w^2`` and ``C = sum w^2 (x - R)^2``. When ``R`` moves by ``d`` the centred sums
-    shift exactly (``C += 2 d A + d^2 B``, ``A += d B``), so no large uncentred sums are
-    ever subtracted.
-
-    >>> t = WeightedTally(1)
-    >>> t.add(np.array([0, 0, 0]), np.array([1.0, 3.0, 10.0]), np.array([1.0, 3.0, 0.0]))
-    >>> float(t.estimate()[0]), int(t.count[0]), int(t.weighted_count[0])
-    (2.5, 3, 2)
-    >>> round(float(t.effective_visits[0]), 3)
-    1.6
-    """
-
-    def __init__(self, size: int):
-        self.count = np.zeros(size, dtype=np.int64)  # every visit, zero weight or not
-        self.weighted_count = np.zeros(size, dtype=np.int64)  # visits with w > 0
-        self.weight_sum = np.zeros(size)
-        self.mean = np.zeros(size)
-        self.centred_first = np.zeros(size)  # A
-        self.square_weight_sum = np.zeros(size)  # B
-        self.centred_second = np.zeros(size)  # C
-
-    def add(self, indices: np.ndarray, values: np.ndarray, weights: np.ndarray) -> None:
-        indices = np.asarray(indices, dtype=np.int64)
-        values = np.asarray(values, dtype=np.float64)
-        weights = np.asarray(weights, dtype=np.float64)
-        if indices.size == 0:
-            return
-        if (weights < 0).any():
-            raise ValueError("importance weights must be non-negative")
-        entries, inverse = np.unique(indices, return_inverse=True)
-        w_b = np.bincount(inverse, weights, minlength=entries.size)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r_b = np.where(w_b > 0, np.bincount(inverse, weights * values) / w_b, 0.0)
-        resid = values - r_b[inverse]
-        sq = weights**2
-        a_b = np.bincount(inverse, sq * resid)
-        b_b = np.bincount(inverse, sq)
-        c_b = np.bincount(inverse, sq * resid**2)
-
-        w_a, r_a = self.weight_sum[entries], self.mean[entries]
-        a_a, b_a, c_a = self.centred_first[entries], self.square_weight_sum[entries], self.centred_second[entries]
-        w = w_a + w_b
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r = np.where(w > 0, (w_a * r_a + w_b * r_b) / w, 0.0)
-        d_a, d_b = r_a - r, r_b - r
-        self.centred_second[entries] = c_a + 2 * d_a * a_a + d_a**2 * b_a + c_b + 2 * d_b * a_b + d_b**2 * b_b
-        self.centred_first[entries] = a_a + d_a * b_a + a_b + d_b * b_b
-        self.square_weight_sum[entries] = b_a + b_b
-        self.weight_sum[entries] = w
-        self.mean[entries] = r
-        self.count[entries] += np.bincount(inverse)
-        self.weighted_count[entries] += np.bincount(inverse, (weights > 0).astype(np.float64)).astype(np.int64)
-
-    @property
-    def standard_error(self) -> np.ndarray:
-        """Delta-method standard error (module docstring); NaN below two weighted visits."""
-        m = self.weighted_count
-        with np.errstate(invalid="ignore", divide="ignore"):
-            var = np.maximum(self.centred_second, 0.0) / self.weight_sum**2 * m / (m - 1)
+            var = np.maximum(self.centred_square, 0.0) / self.denominator_sum**2 * m / (m - 1)
             return np.where(m >= 2, np.sqrt(var), np.nan)
 
     @property
-    def effective_visits(self) -> np.ndarray:
-        """Kish's effective sample size ``(sum w)^2 / sum w^2``; 0 where no weight arrived."""
+    def effective_size(self) -> np.ndarray:
+        """Kish's effective sample size ``D^2 / B`` of the per-episode denominators; 0 where none arrived."""
         with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.square_weight_sum > 0, self.weight_sum**2 / self.square_weight_sum, 0.0)
+            return np.where(self.square_denominator_sum > 0, self.denominator_sum**2 / self.square_denominator_sum, 0.0)
 
     def estimate(self) -> np.ndarray:
-        """The weighted mean, NaN where the weights sum to 0 (nothing to say yet)."""
-        return np.where(self.weight_sum > 0, self.mean, np.nan)
+        """The ratio, NaN where the denominators sum to 0 (nothing to say yet)."""
+        return np.where(self.denominator_sum > 0, self.ratio, np.nan)
 
 
 @dataclass(frozen=True)
 class Estimates:
-    """Estimated values with their standard errors and visit counts, shaped ``(S,)`` or ``(S, A)``.
+    """Estimated values with standard errors, visit counts and effective sizes, shaped ``(S,)`` or ``(S, A)``.
 
-    ``value`` is NaN where there is no estimate. ``effective_visits`` equals ``visits`` for
-    plain averages; for weighted IS it is Kish's effective sample size.
+    ``value`` is NaN where there is no estimate. ``visits`` counts every visit used
+    (zero-ratio ones included); ``episodes`` the episodes that carried weight;
+    ``effective_visits`` is Kish's effective sample size over episodes (module docstring),
+    equal to ``visits`` for first-visit on-policy averaging.
     """
 
     value: np.ndarray
     standard_error: np.ndarray
     visits: np.ndarray
     effective_visits: np.ndarray
+    episodes: np.ndarray
 
 
-def _estimates_of(tally: Tally | WeightedTally, shape: tuple[int, ...]) -> Estimates:
-    if isinstance(tally, WeightedTally):
-        effective = tally.effective_visits
-    else:
-        effective = tally.count.astype(np.float64)
+def _estimates_of(tally: RatioTally, shape: tuple[int, ...], weights: RatioTally | None = None) -> Estimates:
+    """``weights``: the tally whose denominators are the episode weights (weighted IS's, for ordinary IS)."""
     return Estimates(
         value=tally.estimate().reshape(shape),
         standard_error=tally.standard_error.reshape(shape),
-        visits=tally.count.copy().reshape(shape),
-        effective_visits=effective.reshape(shape),
+        visits=tally.visits.copy().reshape(shape),
+        effective_visits=(weights or tally).effective_size.reshape(shape),
+        episodes=tally.episodes.copy().reshape(shape),
     )
 
 
@@ -303,15 +274,18 @@ def episode_samples(
 
 
 class _Buffered:
-    """Collects per-episode samples and folds them into tallies in large batches."""
+    """Collects per-visit samples tagged with their episode; folds them, summed per episode and entry, in large batches."""
 
     def __init__(self) -> None:
         self._buffer: list[tuple[np.ndarray, ...]] = []
         self._buffered = 0
+        self._buffered_episodes = 0
 
     def _push(self, *arrays: np.ndarray) -> None:
-        self._buffer.append(arrays)
-        self._buffered += arrays[0].shape[0]
+        length = arrays[0].shape[0]
+        self._buffer.append((np.full(length, self._buffered_episodes, dtype=np.int64), *arrays))
+        self._buffered_episodes += 1
+        self._buffered += length
         if self._buffered >= _FLUSH_AT:
             self.flush()
 
@@ -321,14 +295,27 @@ class _Buffered:
         columns = [np.concatenate(parts) for parts in zip(*self._buffer)]
         self._buffer.clear()
         self._buffered = 0
+        self._buffered_episodes = 0
         self._fold(*columns)
 
     def _fold(self, *columns: np.ndarray) -> None:  # pragma: no cover - abstract
         raise NotImplementedError
 
 
+def _per_episode(episode: np.ndarray, index: np.ndarray, size: int, *values: np.ndarray) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+    """Sum ``values`` per (episode, entry) over the rows with ``index >= 0``: entries, visit counts, sums."""
+    keep = index >= 0
+    keys, inverse = np.unique(episode[keep] * size + index[keep], return_inverse=True)
+    sums = [np.bincount(inverse, v[keep], minlength=keys.size) for v in values]
+    return keys % size, np.bincount(inverse, minlength=keys.size), sums
+
+
 class OnPolicyPrediction(_Buffered):
-    """V and Q of the policy that generated the episodes, by first-visit or every-visit averaging."""
+    """V and Q of the policy that generated the episodes, by first-visit or every-visit averaging.
+
+    Both are ratio estimates over episodes (module docstring): ``sum G / visits``, with the
+    standard error of episodes, not of visits.
+    """
 
     methods = ("on_policy",)
 
@@ -337,8 +324,8 @@ class OnPolicyPrediction(_Buffered):
         if not 0.0 <= gamma <= 1.0:
             raise ValueError(f"gamma must be in [0, 1], got {gamma}")
         self.n_states, self.n_actions, self.gamma, self.first_visit = n_states, n_actions, float(gamma), bool(first_visit)
-        self.state_tally = Tally(n_states)
-        self.pair_tally = Tally(n_states * n_actions)
+        self.state_tally = RatioTally(n_states)
+        self.pair_tally = RatioTally(n_states * n_actions)
 
     def add_episode(self, states, actions, rewards, *, tail_value: float = 0.0, forced_first_action: bool = False) -> None:
         samples = episode_samples(
@@ -347,18 +334,16 @@ class OnPolicyPrediction(_Buffered):
         )
         states = np.asarray(states, dtype=np.int64)
         pairs = states * self.n_actions + np.asarray(actions, dtype=np.int64)
-        g = samples.returns
         self._push(
             np.where(samples.state_steps, states, -1),
             np.where(samples.pair_steps, pairs, -1),
-            g,
+            samples.returns,
         )
 
-    def _fold(self, state_index: np.ndarray, pair_index: np.ndarray, g: np.ndarray) -> None:
-        keep = state_index >= 0
-        self.state_tally.add(state_index[keep], g[keep])
-        keep = pair_index >= 0
-        self.pair_tally.add(pair_index[keep], g[keep])
+    def _fold(self, episode: np.ndarray, state_index: np.ndarray, pair_index: np.ndarray, g: np.ndarray) -> None:
+        for tally, index in ((self.state_tally, state_index), (self.pair_tally, pair_index)):
+            entries, visits, (x,) = _per_episode(episode, index, tally.visits.size, g)
+            tally.add(entries, x, visits.astype(np.float64), visits)
 
     def state_values(self, method: str = "on_policy") -> Estimates:
         self.flush()
@@ -369,8 +354,10 @@ class OnPolicyPrediction(_Buffered):
         return _estimates_of(self.pair_tally, (self.n_states, self.n_actions))
 
     def value_of(self, state: int) -> float:
-        """V estimate of one state as of the last folded batch (0 if none): what a cut-off episode is seeded with."""
-        return float(self.state_tally.mean[state]) if self.state_tally.count[state] else 0.0
+        """V estimate of one state from every episode added so far (0 if none): what a cut-off episode is seeded with."""
+        self.flush()
+        value = self.state_tally.estimate()[state]
+        return float(value) if np.isfinite(value) else 0.0
 
 
 def check_coverage(target: np.ndarray, behaviour: np.ndarray, atol: float = 0.0) -> np.ndarray:
@@ -389,7 +376,9 @@ class ImportanceSamplingPrediction(_Buffered):
 
     Ordinary IS averages ``rho * G`` over every visit (zero ratios included): unbiased, but
     its variance can be large. Weighted IS divides by ``sum rho`` instead of the visit count:
-    biased for finite samples (consistent), usually far less variable.
+    biased for finite samples (consistent), usually far less variable. Both are ratio
+    estimates over episodes (module docstring); both report the effective sample size of
+    the episode weights ``sum rho``.
     """
 
     methods = IS_METHODS
@@ -406,8 +395,8 @@ class ImportanceSamplingPrediction(_Buffered):
         self.n_states, self.n_actions = target.shape
         self.gamma, self.first_visit = float(gamma), bool(first_visit)
         size_s, size_q = self.n_states, self.n_states * self.n_actions
-        self.ordinary_state, self.ordinary_pair = Tally(size_s), Tally(size_q)
-        self.weighted_state, self.weighted_pair = WeightedTally(size_s), WeightedTally(size_q)
+        self.ordinary_state, self.ordinary_pair = RatioTally(size_s), RatioTally(size_q)
+        self.weighted_state, self.weighted_pair = RatioTally(size_s), RatioTally(size_q)
 
     def add_episode(self, states, actions, rewards, *, tail_value: float = 0.0, forced_first_action: bool = False) -> None:
         samples = episode_samples(
@@ -424,165 +413,41 @@ class ImportanceSamplingPrediction(_Buffered):
             samples.pair_ratios,
         )
 
-    def _fold(self, state_index, pair_index, g, state_ratio, pair_ratio) -> None:
-        keep = state_index >= 0
-        self.ordinary_state.add(state_index[keep], state_ratio[keep] * g[keep])
-        self.weighted_state.add(state_index[keep], g[keep], state_ratio[keep])
-        keep = pair_index >= 0
-        self.ordinary_pair.add(pair_index[keep], pair_ratio[keep] * g[keep])
-        self.weighted_pair.add(pair_index[keep], g[keep], pair_ratio[keep])
+    def _fold(self, episode, state_index, pair_index, g, state_ratio, pair_ratio) -> None:
+        for ordinary, weighted, index, ratio in (
+            (self.ordinary_state, self.weighted_state, state_index, state_ratio),
+            (self.ordinary_pair, self.weighted_pair, pair_index, pair_ratio),
+        ):
+            entries, visits, (x, w) = _per_episode(episode, index, ordinary.visits.size, ratio * g, ratio)
+            ordinary.add(entries, x, visits.astype(np.float64), visits)
+            weighted.add(entries, x, w, visits)
 
-    def _tally(self, method: str, kind: str) -> Tally | WeightedTally:
+    def _tallies(self, method: str, kind: str) -> tuple[RatioTally, RatioTally]:
+        """The method's tally and the weighted one, whose denominators are the episode weights."""
         if method not in IS_METHODS:
             raise ValueError(f"method={method!r}; choose one of {', '.join(IS_METHODS)}")
-        return {
-            ("ordinary", "v"): self.ordinary_state,
-            ("ordinary", "q"): self.ordinary_pair,
-            ("weighted", "v"): self.weighted_state,
-            ("weighted", "q"): self.weighted_pair,
-        }[(method, kind)]
+        weighted = self.weighted_state if kind == "v" else self.weighted_pair
+        ordinary = self.ordinary_state if kind == "v" else self.ordinary_pair
+        return (weighted if method == "weighted" else ordinary), weighted
 
     def state_values(self, method: str = "weighted") -> Estimates:
         self.flush()
-        return _estimates_of(self._tally(method, "v"), (self.n_states,))
+        tally, weights = self._tallies(method, "v")
+        return _estimates_of(tally, (self.n_states,), weights)
 
     def action_values(self, method: str = "weighted") -> Estimates:
         self.flush()
-        return _estimates_of(self._tally(method, "q"), (self.n_states, self.n_actions))
+        tally, weights = self._tallies(method, "q")
+        return _estimates_of(tally, (self.n_states, self.n_actions), weights)
 
     def value_of(self, state: int) -> float:
-        """Weighted-IS V estimate of one state as of the last folded batch (0 if none), for seeding a cut-off episode."""
-        tally = self.weighted_state
-        return float(tally.mean[state]) if tally.weight_sum[state] > 0 else 0.0
+        """Weighted-IS V estimate of one state from every episode added so far (0 if none), for seeding a cut-off episode."""
+        self.flush()
+        value = self.weighted_state.estimate()[state]
+        return float(value) if np.isfinite(value) else 0.0
 
 
 # ---------------------------------------------------------------- playing episodes
+# Playing lives with the shared episode source; re-exported here for existing callers.
 
-
-class Estimator(Protocol):
-    def add_episode(self, states, actions, rewards, *, tail_value: float = 0.0, forced_first_action: bool = False) -> None: ...
-
-    def value_of(self, state: int) -> float: ...
-
-
-class ProgressSink(Protocol):
-    def update(self, episodes: int, status: dict) -> None: ...
-
-
-@dataclass(frozen=True)
-class PlayedSummary:
-    """How the episodes went (undiscounted return per episode; time-limit cuts)."""
-
-    episodes: int
-    return_mean: float
-    return_standard_error: float
-    truncated: int
-    discarded: int
-    steps: int
-
-
-def prediction_streams(seed: int) -> dict[str, Any]:
-    """Independent random streams (environment, actions, starts) split from one seed."""
-    env_seq, action_seq, start_seq = np.random.SeedSequence(seed).spawn(3)
-    return {
-        "env_seed": int(env_seq.generate_state(1)[0] % (2**31 - 1)),
-        "actions": np.random.default_rng(action_seq),
-        "starts": np.random.default_rng(start_seq),
-    }
-
-
-def _sampler(policy: np.ndarray, rng: np.random.Generator) -> Callable[[int], tuple[int, float]]:
-    """``choose(state) -> (action, probability)`` drawing from the rows of ``policy``."""
-    cumulative = np.cumsum(policy, axis=1)
-    deterministic = policy.max(axis=1) >= 1.0
-    fixed = np.argmax(policy, axis=1)
-    last = policy.shape[1] - 1
-    cumulative_rows = cumulative.tolist()
-    policy_rows = policy.tolist()
-    fixed_list, deterministic_list = fixed.tolist(), deterministic.tolist()
-    random = rng.random
-
-    def choose(state: int) -> tuple[int, float]:
-        if deterministic_list[state]:
-            return fixed_list[state], 1.0
-        u = random() * cumulative_rows[state][-1]
-        row = cumulative_rows[state]
-        action = 0
-        while action < last and (row[action] <= u or policy_rows[state][action] == 0.0):
-            action += 1
-        return action, policy_rows[state][action]
-
-    return choose
-
-
-def play_prediction_episodes(
-    environment,
-    policy: np.ndarray,
-    estimator: Estimator,
-    episodes: int,
-    *,
-    seed: int = 0,
-    start_observation: Any = None,
-    start_action: int | None = None,
-    start_states: Sequence[Any] | None = None,
-    random_first_action: bool = False,
-    truncation: str = "as_terminal",
-    progress: ProgressSink | None = None,
-    report_every: int = 500,
-) -> PlayedSummary:
-    """Play ``episodes`` episodes of ``policy`` (an ``(S, A)`` array) and add each to ``estimator``.
-
-    Starts: by default the environment's own reset. ``start_observation`` (and optionally
-    ``start_action``) fixes the start of every episode through ``environment.start_control``;
-    ``start_states`` instead draws each start uniformly from the given observations
-    (exploring-style), with a uniform first action too if ``random_first_action``.
-
-    ``truncation`` says what a time-limit cut means: ``as_terminal`` (return 0 after the
-    cut), ``bootstrap`` (seed the return with the estimator's current value of the state
-    reached), or ``discard`` (drop the episode).
-    """
-    from ..engine.gym_loop import play_episode
-
-    if truncation not in ("as_terminal", "bootstrap", "discard"):
-        raise ValueError(f"truncation={truncation!r}; choose as_terminal, bootstrap or discard")
-    policy = np.asarray(policy, dtype=np.float64)
-    if policy.shape != (environment.n_states, environment.n_actions):
-        raise ValueError(f"policy has shape {policy.shape}, environment needs {(environment.n_states, environment.n_actions)}")
-    needs_start = start_observation is not None or start_states is not None
-    if needs_start and environment.start_control is None:
-        raise ValueError(f"{environment.spec.id!r} cannot be started in a chosen state")
-    streams = prediction_streams(seed)
-    choose = _sampler(policy, streams["actions"])
-    starts_rng: np.random.Generator = streams["starts"]
-    starts = list(start_states) if start_states is not None else None
-    total_returns = np.zeros(episodes)
-    truncated = discarded = steps = 0
-    for episode in range(episodes):
-        observation, first_action = start_observation, start_action
-        if starts is not None:
-            observation = starts[int(starts_rng.integers(len(starts)))]
-            if random_first_action:
-                first_action = int(starts_rng.integers(environment.n_actions))
-        played = play_episode(
-            environment, choose, seed=streams["env_seed"] if episode == 0 else None,
-            start_observation=observation, first_action=first_action,
-        )
-        arrays = played.arrays
-        total_returns[episode] = played.total_reward
-        steps += arrays.length
-        tail = 0.0
-        if played.truncated:
-            truncated += 1
-            if truncation == "discard":
-                discarded += 1
-                continue
-            if truncation == "bootstrap":
-                tail = estimator.value_of(played.final_state)
-        estimator.add_episode(arrays.states, arrays.actions, arrays.rewards, tail_value=tail, forced_first_action=first_action is not None)
-        if progress is not None and ((episode + 1) % report_every == 0 or episode + 1 == episodes):
-            recent = total_returns[max(0, episode + 1 - report_every) : episode + 1]
-            progress.update(episode + 1, {"return_mean": float(recent.mean())})
-    n = max(episodes, 1)
-    se = float(total_returns.std(ddof=1) / np.sqrt(n)) if episodes >= 2 else float("nan")
-    return PlayedSummary(episodes=episodes, return_mean=float(total_returns.mean()) if episodes else float("nan"),
-                         return_standard_error=se, truncated=truncated, discarded=discarded, steps=steps)
+from .policy_episodes import PlayedSummary, play_prediction_episodes  # noqa: E402
