@@ -68,4 +68,7 @@ def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
     if top is not None:
         facts.append(f"(of {top[0]} {top[1]})")
     lines.append("summary: " + "  ".join(facts))
+    played = summary.played
+    if played.capped:
+        lines.append(f"note: {played.capped} of {played.episodes} episodes reached env.step_cap and were cut (treated as env.truncation={plan.truncation})")
     return "\n".join(lines)
