@@ -1,4 +1,9 @@
-"""Each bad input: a one-line message naming the problem, a non-zero exit, no traceback, no run left RUNNING."""
+"""Each bad input: a one-line message naming the problem, a non-zero exit, no traceback, no run left RUNNING.
+
+Every case here is refused before a run is opened, so the store must hold no run at all;
+a refusal that only came after the run was open (as ``initial_value=nan`` once did, with an
+IndexError) leaves a FAILED run behind and fails the test.
+"""
 
 import pytest
 from mlflow.tracking import MlflowClient
@@ -17,21 +22,66 @@ CASES = [
     (["env=cartpole_binned", "variant=exploring_starts"], ["exploring_starts", "variant=on_policy or variant=off_policy"]),
     (["episodes=many"], ["episodes", "could not be converted"]),
     (["no_such_key=1"], ["no_such_key", "no such config key"]),
+    (["initial_value=nan"], ["initial_value=nan", "finite number"]),
+    (["initial_value=inf"], ["initial_value=inf", "finite number"]),
+    (["initial_value=-inf"], ["initial_value=-inf", "finite number"]),
+    (["env.kwargs.map_name=5x5"], ["env.kwargs=", "'map_name': '5x5'", "the environment refused them", "KeyError: '5x5'"]),
+    (["env=restock", "+env.kwargs.no_such_argument=3"], ["env.kwargs=", "no_such_argument", "the environment refused them"]),
+    # A mistyped argument without '+': refused against the env config's own list, not in Hydra's multi-line block.
+    (["env.kwargs.is_slipery=false"], ["env.kwargs.is_slipery", "is_slippery, map_name", "+env.kwargs.is_slipery="]),
+    (["env.max_episode_steps=0"], ["env.max_episode_steps=0", "positive number of steps", "null"]),
+    (["env.max_episode_steps=-3"], ["env.max_episode_steps=-3", "positive number of steps"]),
+    (["env.step_cap=0"], ["env.step_cap=0", "positive number of steps", "null"]),
+    (["env.step_cap=-10"], ["env.step_cap=-10", "positive number of steps"]),
 ]
+
+# qtally-evaluate: the same checks reach it through its own validation, plus its own rules.
+EVALUATE_CASES = [
+    (["gamma=nan"], ["gamma=nan", "[0, 1]"]),
+    (["env=frozen_lake_4x4", "env.kwargs.map_name=5x5"], ["env.kwargs=", "'map_name': '5x5'", "the environment refused them"]),
+    (["env=frozen_lake_4x4", "env.max_episode_steps=0"], ["env.max_episode_steps=0", "positive number of steps"]),
+    (["env.kwargs.natural=true"], ["env.kwargs.natural", "env=blackjack", "(it lists: sab)", "+env.kwargs.natural="]),
+    (["env=frozen_lake_4x4", "env.max_episode_steps=-1"], ["env.max_episode_steps=-1", "positive number of steps"]),
+    (["env=frozen_lake_4x4", "env.step_cap=0"], ["env.step_cap=0", "positive number of steps"]),
+    (["estimate=w"], ["estimate='w'", "v, q, both"]),
+    (["env=frozen_lake_4x4", "start.observation=5"], ["start.observation=5", "not a state an episode can start in"]),
+    # The behaviour differs from the target in cell 14, a state an episode acts in: still refused.
+    (
+        ["env=frozen_lake_4x4", "gamma=0.9", "policy.rule=constant", "policy.action=1", "behaviour.source=rule", "behaviour.rule=threshold",
+         "behaviour.part=state", "behaviour.threshold=14", "behaviour.low_action=1", "behaviour.high_action=0"],
+        ["behaviour", "in 1 state(s)", "state=14", "behaviour.epsilon"],
+    ),
+]
+
+
+def _assert_clean_failure(result, program, words, store):
+    assert result.returncode != 0
+    lines = [line for line in result.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1, result.stderr
+    assert lines[0].startswith(f"{program}: error: ")
+    for word in words:
+        assert word in lines[0], lines[0]
+    assert "Traceback" not in result.stderr + result.stdout
+    if store.exists():
+        client = MlflowClient(tracking_uri=f"sqlite:///{store}")
+        experiments = [e.experiment_id for e in client.search_experiments()]
+        runs = client.search_runs(experiments)
+        assert not [r for r in runs if r.info.status == "RUNNING"]
+        assert not runs, f"bad input opened a run: {[(r.info.run_id, r.info.status) for r in runs]}"
 
 
 @pytest.mark.parametrize("arguments, words", CASES, ids=[" ".join(a) for a, _ in CASES])
 def test_bad_input_fails_cleanly(run_cli, tmp_path, arguments, words):
-    result = run_cli("qtally-train", "episodes=50" if not any(a.startswith("episodes") for a in arguments) else "quiet=false", *arguments)
-    assert result.returncode != 0
-    lines = [line for line in result.stderr.splitlines() if line.strip()]
-    assert len(lines) == 1, result.stderr
-    assert lines[0].startswith("qtally-train: error: ")
-    for word in words:
-        assert word in lines[0], lines[0]
-    assert "Traceback" not in result.stderr + result.stdout
     store = tmp_path / "mlflow.db"
-    if store.exists():
-        client = MlflowClient(tracking_uri=f"sqlite:///{store}")
-        experiments = [e.experiment_id for e in client.search_experiments()]
-        assert not [r for r in client.search_runs(experiments) if r.info.status == "RUNNING"]
+    result = run_cli(
+        "qtally-train", "episodes=50" if not any(a.startswith("episodes") for a in arguments) else "quiet=false",
+        f"tracking.uri=sqlite:///{store}", *arguments,
+    )
+    _assert_clean_failure(result, "qtally-train", words, store)
+
+
+@pytest.mark.parametrize("arguments, words", EVALUATE_CASES, ids=[" ".join(a) for a, _ in EVALUATE_CASES])
+def test_bad_evaluate_input_fails_cleanly(run_cli, tmp_path, arguments, words):
+    store = tmp_path / "mlflow.db"
+    result = run_cli("qtally-evaluate", "episodes=50", f"tracking.uri=sqlite:///{store}", *arguments)
+    _assert_clean_failure(result, "qtally-evaluate", words, store)

@@ -33,8 +33,10 @@ def _run(tmp_path: Path, *overrides: str) -> subprocess.CompletedProcess:
 def store(tmp_path_factory):
     """One good run and two bad ones against the same store."""
     tmp_path = tmp_path_factory.mktemp("evaluate")
-    good = _run(tmp_path, "env=frozen_lake_4x4", "policy.rule=uniform", "gamma=0.9", "episodes=400", "seed=3", "min_visits=20", "quiet=false")
-    bad_part = _run(tmp_path, "env=frozen_lake_4x4", "policy.rule=threshold", "policy.part=hand", "episodes=10")
+    # No policy.* override: the default target policy must fit FrozenLake (it is uniform).
+    good = _run(tmp_path, "env=frozen_lake_4x4", "gamma=0.9", "episodes=400", "seed=3", "min_visits=20", "quiet=false")
+    bad_part = _run(tmp_path, "env=frozen_lake_4x4", "policy.rule=threshold", "policy.part=hand", "policy.threshold=3",
+                    "policy.low_action=0", "policy.high_action=1", "episodes=10")
     bad_run = _run(tmp_path, "env=frozen_lake_4x4", "policy.source=run", "policy.run_id=0123456789abcdef0123456789abcdef", "episodes=10")
     return tmp_path, good, bad_part, bad_run
 
@@ -94,3 +96,22 @@ def test_bad_input_fails_in_one_line_and_leaves_no_running_run(store, case, expe
     runs = [run for experiment in client.search_experiments() for run in client.search_runs([experiment.experiment_id])]
     assert runs and all(run.info.status != "RUNNING" for run in runs)
     assert len(runs) == 1  # only the good run: bad input opened none
+
+
+# A behaviour that acts like the target everywhere an episode can act, and differs only where
+# no action is ever taken: FrozenLake's goal (cell 15, terminal in the model), and Blackjack's
+# player sums of 22 and more (no model; start control lists every state an episode acts in).
+COVERED_BUT_FOR_TERMINAL_STATES = {
+    "frozen_lake_goal": ["env=frozen_lake_4x4", "gamma=0.9", "policy.rule=constant", "policy.action=1",
+                         "behaviour.threshold=15", "behaviour.part=state"],
+    "blackjack_bust": ["env=blackjack", "policy.rule=constant", "policy.action=1", "behaviour.threshold=22", "behaviour.part=player_sum"],
+}
+
+
+@pytest.mark.parametrize("case", sorted(COVERED_BUT_FOR_TERMINAL_STATES))
+def test_coverage_ignores_states_no_episode_acts_in(tmp_path, case):
+    behaviour = ["behaviour.source=rule", "behaviour.rule=threshold", "behaviour.low_action=1", "behaviour.high_action=0"]
+    result = _run(tmp_path, *COVERED_BUT_FOR_TERMINAL_STATES[case], *behaviour, "episodes=50", "quiet=true")
+    assert result.returncode == 0, result.stderr[-2000:]
+    run_id = result.stdout.strip()
+    assert _client(tmp_path).get_run(run_id).info.status == "FINISHED"

@@ -2,7 +2,8 @@
 
 Types are checked when Hydra composes the config (``episodes=many`` fails there, naming
 the key); value ranges, choices and cross-key rules are checked by
-:func:`qtally.prediction_run.prepare_prediction` before any run is opened.
+:mod:`qtally.config.validate_evaluate` (called by
+:func:`qtally.prediction_run.prepare_prediction`) before any run is opened.
 """
 
 from __future__ import annotations
@@ -26,7 +27,7 @@ class PolicyConfig:
     run_id: Optional[str] = None  # source=run: the run's policy_file/policy.npz artifact
     path: Optional[str] = None  # source=file: a qtally policy file
     uri: Optional[str] = None  # source=model: runs:/<id>/policy or models:/<name>/<version>
-    rule: str = "uniform"  # source=rule: threshold, uniform or constant
+    rule: str = "uniform"  # source=rule: uniform (the default: it fits every environment), threshold or constant
     part: Optional[str] = None  # threshold: observation part name (or position)
     threshold: Optional[float] = None
     low_action: Optional[int] = None  # threshold: action below the threshold

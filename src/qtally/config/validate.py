@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import math
+
 from omegaconf import DictConfig
 
 from ..control.schedules import SCHEDULE_KINDS
 from ..control.variants import VARIANT_NAMES
-from ..trainer import TRUNCATION_CHOICES
+from ..control.truncation import TRUNCATION_CHOICES
 
-__all__ = ["ConfigError", "validate", "schedule_parameters"]
+__all__ = ["ConfigError", "validate", "validate_env", "schedule_parameters"]
 
 _SCHEDULE_PARAMETERS = {
     "constant": ("epsilon",),
@@ -37,6 +39,18 @@ def schedule_parameters(schedule: DictConfig) -> dict:
     return parameters
 
 
+def validate_env(env: DictConfig) -> None:
+    """The ``env`` group rules both commands share: how an episode may be cut, and what is done with the cut."""
+    if env.truncation not in TRUNCATION_CHOICES:
+        raise ConfigError(f"env.truncation={env.truncation!r}; choose one of {', '.join(TRUNCATION_CHOICES)}")
+    # 0 would read as "no time limit" further down, and a negative limit is gymnasium's traceback.
+    if env.max_episode_steps is not None and env.max_episode_steps <= 0:
+        raise ConfigError(f"env.max_episode_steps={env.max_episode_steps} must be a positive number of steps, or null for no time limit")
+    step_cap = env.get("step_cap")
+    if step_cap is not None and step_cap <= 0:
+        raise ConfigError(f"env.step_cap={step_cap} must be a positive number of steps, or null for the default derived from the state count")
+
+
 def validate(cfg: DictConfig) -> None:
     if cfg.episodes <= 0:
         raise ConfigError(f"episodes={cfg.episodes} must be a positive number of episodes")
@@ -46,8 +60,10 @@ def validate(cfg: DictConfig) -> None:
         raise ConfigError(f"variant.name={cfg.variant.name!r} is unknown; choose one of {', '.join(VARIANT_NAMES)}")
     if cfg.variant.step_size is not None and not 0.0 < cfg.variant.step_size <= 1.0:
         raise ConfigError(f"variant.step_size={cfg.variant.step_size} must lie in (0, 1], or be null for the sample average")
-    if cfg.env.truncation not in TRUNCATION_CHOICES:
-        raise ConfigError(f"env.truncation={cfg.env.truncation!r}; choose one of {', '.join(TRUNCATION_CHOICES)}")
+    validate_env(cfg.env)
+    # A nan or infinite starting value poisons every comparison the greedy policy makes.
+    if not math.isfinite(cfg.initial_value):
+        raise ConfigError(f"initial_value={cfg.initial_value} must be a finite number (the starting Q value of every pair)")
     parameters = schedule_parameters(cfg.schedule)
     for key in _UNIT_KEYS:
         value = parameters.get(key)
@@ -57,7 +73,7 @@ def validate(cfg: DictConfig) -> None:
         raise ConfigError(f"schedule.rate={parameters['rate']} must lie in (0, 1]")
     if cfg.schedule.kind == "linear" and parameters["decay_episodes"] < 1:
         raise ConfigError(f"schedule.decay_episodes={parameters['decay_episodes']} must be a positive episode count")
-    if cfg.schedule.kind.startswith("glie") and parameters["scale"] <= 0:
+    if cfg.schedule.kind.startswith("glie") and not parameters["scale"] > 0:  # written so nan fails too
         raise ConfigError(f"schedule.scale={parameters['scale']} must be positive")
     for key in ("log_every", "eval_episodes"):
         if cfg[key] <= 0:

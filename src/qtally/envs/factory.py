@@ -12,10 +12,13 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping, Sequence
 
 import gymnasium as gym
+import numpy as np
 from gymnasium import spaces
 from gymnasium.wrappers import TimeLimit
 
+from ..errors import first_line
 from .encoders import Encoder, EncoderError, encoder_for_space
+from .model import TabularModel
 from .start_adapters import start_control_for
 from .start_control import StartControl
 
@@ -55,8 +58,39 @@ class TabularEnvironment:
         """What a policy learned here must match to be used here."""
         return {"env_id": self.spec.id, "observation": self.encoder.spec(), "n_actions": self.n_actions}
 
+    def decision_states(self, model: TabularModel | None = None) -> np.ndarray:
+        """Bool ``(S,)``: the states an episode can act in, where the action taken can matter.
+
+        Terminal states and states no episode can be in are not among them, so checks on a
+        policy (does the behaviour cover the target?) leave them out. With ``model``, every
+        state the model does not mark terminal; without one, the states start control lists
+        (every non-terminal state episodes reach); without either, every state.
+        """
+        if model is not None and model.n_states == self.n_states:
+            return ~np.asarray(model.terminal, dtype=bool)
+        mask = np.ones(self.n_states, dtype=bool)
+        if self.start_control is not None:
+            mask[:] = False
+            for observation in self.start_control.start_states():
+                mask[self.encoder.encode(observation)] = True
+        return mask
+
     def close(self) -> None:
         self.env.close()
+
+
+# What a constructor raises when it does not like its arguments (FrozenLake's unknown
+# map_name is a KeyError, a bad shape an AssertionError, an unknown keyword a TypeError).
+_REFUSED = (LookupError, ValueError, TypeError, AssertionError)
+
+
+def _refused(spec: EnvironmentSpec, exc: BaseException) -> EnvironmentConfigError:
+    if spec.kwargs:
+        return EnvironmentConfigError(
+            f"env.kwargs={dict(spec.kwargs)!r}: the environment refused them ({first_line(exc)}); "
+            f"use constructor arguments {spec.id!r} accepts"
+        )
+    return EnvironmentConfigError(f"env.id={spec.id!r}: the environment could not be made ({first_line(exc)})")
 
 
 def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
@@ -74,8 +108,8 @@ def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
             raise EnvironmentConfigError(f"env.id={spec.id!r}: module {module_name!r} has no {class_name!r}; check the entry point 'module:Class'")
         try:
             env = cls(**kwargs)
-        except TypeError as exc:
-            raise EnvironmentConfigError(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+        except _REFUSED as exc:
+            raise _refused(spec, exc) from None
         if spec.max_episode_steps:
             env = TimeLimit(env, max_episode_steps=int(spec.max_episode_steps))
         return env
@@ -88,8 +122,8 @@ def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
     except gym.error.Error as exc:
         message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise EnvironmentConfigError(f"env.id={spec.id!r} is not a registered Gymnasium environment ({message}); use a registered id or a 'module:Class' entry point") from None
-    except TypeError as exc:
-        raise EnvironmentConfigError(f"env.id={spec.id!r}: bad constructor arguments in env.kwargs ({exc})") from None
+    except _REFUSED as exc:
+        raise _refused(spec, exc) from None
 
 
 def make_environment(spec: EnvironmentSpec, render_mode: str | None = None) -> TabularEnvironment:
