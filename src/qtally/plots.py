@@ -50,11 +50,21 @@ def learning_curve(history: Mapping[str, Sequence[tuple[int, float]]], path: Pat
     return path
 
 
+def _colour_range(values: np.ndarray) -> tuple[float, float]:
+    """Colour limits from the values that exist; (0, 1) when none does (nothing visited yet), without numpy's all-NaN warning."""
+    finite = np.asarray(values, dtype=float)
+    finite = finite[np.isfinite(finite)]
+    if finite.size == 0:
+        return 0.0, 1.0
+    return float(finite.min()), float(finite.max())
+
+
 def grid_maps(values: np.ndarray, actions: np.ndarray, shape: tuple[int, int], arrows: Sequence[str], path: Path, title: str, blocked: np.ndarray | None = None) -> Path:
     """Heat map of V over a grid with the greedy action drawn in each cell."""
     grid = values.reshape(shape)
     fig, ax = plt.subplots(figsize=(1.0 + 0.6 * shape[1], 0.8 + 0.6 * shape[0]))
-    image = ax.imshow(grid, cmap="viridis")
+    vmin, vmax = _colour_range(grid)
+    image = ax.imshow(grid, cmap="viridis", vmin=vmin, vmax=vmax)
     fig.colorbar(image, ax=ax, fraction=0.046, pad=0.04, label="value")
     for index, action in enumerate(actions):
         r, c = divmod(index, shape[1])
@@ -87,7 +97,7 @@ def two_factor_maps(
     """
     panels = values.shape[0]
     fig, axes = plt.subplots(1, panels, figsize=(4.2 * panels, 4.2), squeeze=False)
-    vmin, vmax = np.nanmin(values), np.nanmax(values)
+    vmin, vmax = _colour_range(values)
     for k, ax in enumerate(axes[0]):
         image = ax.imshow(values[k], cmap="coolwarm", vmin=vmin, vmax=vmax, origin="lower", aspect="auto")
         for r in range(values.shape[1]):

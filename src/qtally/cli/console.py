@@ -14,12 +14,21 @@ __all__ = ["EpisodeProgress", "TrainingProgress", "PredictionProgress", "fail", 
 
 
 def quiet_libraries() -> None:
-    """Keep MLflow's own progress bars and info lines out of qtally's console output."""
+    """Keep MLflow's own progress bars and info lines, and matplotlib's, out of qtally's console output.
+
+    MLflow sets its logger's level when it is imported, from ``MLFLOW_LOGGING_LEVEL``
+    (default INFO), so setting the level before that import is not enough: the variable
+    is set too (a user's own value wins). Hydra routes every INFO record to the console,
+    which is how matplotlib's one-time font cache line would reach the user. MLflow's
+    download bars (logging the policy model downloads a file; so does loading a policy)
+    are off whatever the environment says: the console shows qtally's bar alone.
+    """
     import logging
 
-    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
-    logging.getLogger("mlflow").setLevel(logging.WARNING)
-    logging.getLogger("alembic").setLevel(logging.WARNING)
+    os.environ["MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"] = "false"
+    os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
+    for name in ("mlflow", "alembic", "matplotlib"):
+        logging.getLogger(name).setLevel(logging.WARNING)
 
 
 class EpisodeProgress:
