@@ -10,30 +10,28 @@ set -euo pipefail
 export MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR=false
 
 EPISODES="${WALKTHROUGH_EPISODES:-15000}"
-EVAL_EPISODES="${WALKTHROUGH_EVAL_EPISODES:-200}"
+SWEEP_EPISODES="${WALKTHROUGH_SWEEP_EPISODES:-5000}"
+SEEDS="${WALKTHROUGH_SEEDS:-0,1,2,3,4}"
 PREDICTION_EPISODES="${WALKTHROUGH_PREDICTION_EPISODES:-20000}"
 EVAL_EVERY=$(( EPISODES / 3 > 0 ? EPISODES / 3 : 1 ))
+# The restocking config evaluates on 3,000 seasons; the shortened test form asks for fewer.
+EVAL=()
+if [[ -n "${WALKTHROUGH_EVAL_EPISODES:-}" ]]; then EVAL=(eval_episodes="$WALKTHROUGH_EVAL_EPISODES"); fi
 
-echo "== 1. Train each variant on the restocking simulator (${EPISODES} episodes each)"
+echo "== 1. Train each variant on the restocking simulator (${EPISODES} seasons each)"
 for variant in exploring_starts on_policy off_policy; do
-  qtally-train env=restock variant="$variant" episodes="$EPISODES" gamma=1.0 \
-    schedule=constant schedule.epsilon=0.2 eval_every="$EVAL_EVERY" eval_episodes="$EVAL_EPISODES" \
+  qtally-train env=restock variant="$variant" episodes="$EPISODES" \
+    schedule=constant schedule.epsilon=0.2 eval_every="$EVAL_EVERY" "${EVAL[@]}" \
     tracking.experiment=restock-walkthrough quiet=true > "run_${variant}.id"
   echo "$variant: run $(cat "run_${variant}.id")"
 done
 
-echo "== 2. Sweep epsilon schedules across seeds (Hydra multirun, one MLflow run per job)"
-qtally-train -m env=restock variant=on_policy gamma=1.0 episodes="$EPISODES" eval_every=0 eval_episodes="$EVAL_EPISODES" \
-  schedule=constant,glie_visits seed=0,1 tracking.experiment=restock-sweep quiet=true
+echo "== 2. Sweep two epsilon schedules across seeds ${SEEDS}: one parent run, a child run per job"
+qtally-train -m env=restock variant=on_policy episodes="$SWEEP_EPISODES" eval_every=$(( SWEEP_EPISODES / 5 > 0 ? SWEEP_EPISODES / 5 : 1 )) "${EVAL[@]}" \
+  schedule=constant,glie_visits seed="$SEEDS" rollout_animation=false tracking.experiment=restock-sweep quiet=true
 
-echo "== 3. Compare: the runs side by side, best first"
-python - <<'PY'
-import mlflow, os
-mlflow.set_tracking_uri(os.environ.get("MLFLOW_TRACKING_URI", "sqlite:///mlflow.db"))
-runs = mlflow.search_runs(experiment_names=["restock-walkthrough", "restock-sweep"], order_by=["metrics.eval_return_mean DESC"])
-columns = ["tags.variant", "tags.schedule", "tags.seed", "metrics.eval_return_mean", "metrics.eval_return_ci95", "metrics.optimality_gap"]
-print(runs[columns].rename(columns=lambda c: c.split(".", 1)[1]).to_string(index=False, float_format=lambda x: f"{x:.2f}"))
-PY
+echo "== 3. Compare the schedules across seeds: which is better, and is the difference real?"
+qtally-compare sweep=latest experiment=restock-sweep
 
 echo "== 4. Evaluate the exploring-starts policy by Monte Carlo prediction, against the exact values"
 qtally-evaluate env=restock policy.source=run policy.run_id="$(cat run_exploring_starts.id)" \
