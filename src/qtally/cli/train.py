@@ -110,12 +110,16 @@ def _one_sweep_run(cfg: DictConfig) -> float:
 def main() -> None:
     from ..config.schema import EnvConfig, ScheduleConfig, TrainConfig, VariantConfig
     from ..sweep_check import first_bad_job, is_sweep
+    from .group_choices import first_bad_choice
     from ..tracking.sweep import close_open_sweep, sweep_failures
 
     quiet_libraries()
     register_schema()
     schema = TrainConfig(env=EnvConfig(), variant=VariantConfig(), schedule=ScheduleConfig())
     pre_check_overrides(PROGRAM, schema, ("env", "variant", "schedule"), "configs/train.yaml")
+    choice_problem = first_bad_choice(sys.argv[1:], ("env", "variant", "schedule"))
+    if choice_problem:
+        fail(PROGRAM, choice_problem)
     if is_sweep(sys.argv[1:]):
         problem = first_bad_job(sys.argv[1:])
         if problem:
