@@ -6,9 +6,10 @@ import zipfile
 import numpy as np
 import pytest
 
-from qtally.policy.artifact import FORMAT_VERSION, PolicyArtifact, PolicyFormatError, load_policy
+from qtally.policy.artifact import FORMAT_VERSION, PolicyArtifact, PolicyFormatError, _checksum, load_policy
+from qtally.policy.table_policy import Fallback
 
-SIGNATURE = {"env_id": "demo", "observation": {"kind": "parts", "sizes": [3, 2], "starts": [0, 0], "names": ["a", "b"]}, "n_actions": 2}
+SIGNATURE = {"env_id": "demo", "kwargs": {"price": 3}, "observation": {"kind": "parts", "sizes": [3, 2], "starts": [0, 0], "names": ["a", "b"]}, "n_actions": 2}
 
 
 def _artifact():
@@ -30,7 +31,7 @@ def test_round_trip_keeps_arrays_and_facts(tmp_path):
 def test_file_holds_no_object_arrays(tmp_path):
     path = _artifact().save(tmp_path / "p.npz")
     with np.load(path, allow_pickle=False) as archive:
-        assert {archive[k].dtype.kind for k in archive.files} <= {"f", "i", "U"}
+        assert {archive[k].dtype.kind for k in archive.files} <= {"f", "i", "b", "U"}
         assert json.loads(str(archive["metadata"]))["format_version"] == FORMAT_VERSION
 
 
@@ -74,8 +75,62 @@ def test_foreign_files_are_refused(tmp_path):
         load_policy(tmp_path / "pickled.npz")
 
 
-def test_signature_mismatch_is_refused():
+def test_signature_mismatch_is_refused_naming_both_sides():
     other = dict(SIGNATURE, n_actions=3, env_id="elsewhere")
-    with pytest.raises(PolicyFormatError, match="different observation table or action count"):
+    with pytest.raises(PolicyFormatError, match="env_id, n_actions differ") as caught:
         _artifact().check_signature(other)
-    _artifact().check_signature(dict(SIGNATURE, env_id="renamed-but-same-table"))
+    assert "'demo'" in str(caught.value) and "'elsewhere'" in str(caught.value) and "\n" not in str(caught.value)
+    _artifact().check_signature(json.loads(json.dumps(SIGNATURE)))  # the same signature through JSON fits
+
+
+def test_other_constructor_arguments_are_refused():
+    """Same id, same table shape, other prices: a different problem, so refused, both prices named."""
+    with pytest.raises(PolicyFormatError, match="kwargs differ") as caught:
+        _artifact().check_signature(dict(SIGNATURE, kwargs={"price": 5}))
+    assert '{"price": 3}' in str(caught.value) and '{"price": 5}' in str(caught.value)
+    with pytest.raises(PolicyFormatError, match="observation differ"):
+        _artifact().check_signature(dict(SIGNATURE, observation=dict(SIGNATURE["observation"], starts=[1, 0])))
+
+
+def test_visited_and_fallback_round_trip(tmp_path):
+    visits = np.zeros((6, 2), dtype=np.int64)
+    visits[[0, 4], 1] = 5
+    art = PolicyArtifact.from_q(_artifact().q, visits, SIGNATURE, fallback=Fallback("action", 1))
+    loaded = load_policy(art.save(tmp_path / "p.npz"))
+    assert loaded.visited.tolist() == [True, False, False, False, True, False]
+    assert loaded.fallback == Fallback("action", 1)
+    assert loaded.visited_share == pytest.approx(2 / 6)
+    assert loaded.policy().act(np.arange(6)).tolist() == [1, 1, 1, 1, 1, 1]
+    assert loaded.policy().act(np.array([0, 4])).tolist() == [1, 1]
+
+
+def test_edited_visited_array_fails_the_checksum(tmp_path):
+    path = _artifact().save(tmp_path / "p.npz")
+    visited = load_policy(path).visited.copy()
+    visited[3] = not visited[3]
+    _rewrite(path, visited=visited)
+    with pytest.raises(PolicyFormatError, match="checksum"):
+        load_policy(path)
+
+
+def test_edited_fallback_is_not_read_past_its_rules(tmp_path):
+    path = _artifact().save(tmp_path / "p.npz")
+    metadata = _artifact().metadata()
+    metadata["fallback"] = {"rule": "action", "action": 7}
+    _rewrite(path, metadata=np.array(json.dumps(metadata)))
+    with pytest.raises(PolicyFormatError, match="fallback"):
+        load_policy(path)
+
+
+def test_version_1_files_still_load(tmp_path):
+    """A file written before visited states and fallbacks existed: visited from visits, fallback uniform."""
+    art = _artifact()
+    visits = art.visits.copy()
+    visits[2] = 0
+    metadata = {"format": "qtally-policy", "format_version": 1, "signature": {k: v for k, v in SIGNATURE.items() if k != "kwargs"}, "facts": {"episode": 3}, "checksum": _checksum(art.q, visits, art.actions)}
+    np.savez(tmp_path / "v1.npz", q=art.q, visits=visits, actions=art.actions, metadata=np.array(json.dumps(metadata)))
+    loaded = load_policy(tmp_path / "v1.npz")
+    assert loaded.visited.tolist() == [True, True, False, True, True, True]  # only row 2 was cleared
+    assert loaded.fallback == Fallback("uniform")
+    with pytest.raises(PolicyFormatError, match="kwargs not recorded"):
+        loaded.check_signature(SIGNATURE)

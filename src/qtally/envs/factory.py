@@ -56,7 +56,7 @@ class TabularEnvironment:
 
     def signature(self) -> dict:
         """What a policy learned here must match to be used here."""
-        return {"env_id": self.spec.id, "observation": self.encoder.spec(), "n_actions": self.n_actions}
+        return {"env_id": self.spec.id, "kwargs": _plain(dict(self.spec.kwargs or {})), "observation": self.encoder.spec(), "n_actions": self.n_actions}
 
     def decision_states(self, model: TabularModel | None = None) -> np.ndarray:
         """Bool ``(S,)``: the states an episode can act in, where the action taken can matter.
@@ -77,6 +77,17 @@ class TabularEnvironment:
 
     def close(self) -> None:
         self.env.close()
+
+
+def _plain(value: Any) -> Any:
+    """Constructor arguments as JSON-able data (tuples become lists), for the policy signature."""
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
 
 
 # What a constructor raises when it does not like its arguments (FrozenLake's unknown

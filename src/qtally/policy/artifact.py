@@ -1,16 +1,24 @@
 """The policy artifact: a Q table, its visit counts and greedy actions, in a file that loads without pickle.
 
-Format ("qtally-policy", version 1): a NumPy ``.npz`` archive holding the numeric
-arrays ``q`` (float64, states x actions), ``visits`` (int64, same shape) and
-``actions`` (int64, one per state), plus ``metadata``, a 0-d unicode array holding a
-JSON object: format name and version, the environment signature (env id, encoder spec,
-action count), training facts (episode, gamma, variant), and ``checksum``, the SHA-256
-of the three arrays' bytes. :func:`load_policy` opens it with ``allow_pickle=False``,
-checks format, version and checksum, and :meth:`PolicyArtifact.check_signature` checks
-that it fits an environment.
+Format ("qtally-policy", version 2): a NumPy ``.npz`` archive holding the numeric
+arrays ``q`` (float64, states x actions), ``visits`` (int64, same shape), ``actions``
+(int64, the greedy action per state, ties to the lowest index) and ``visited`` (bool,
+one per state: did training reach it), plus ``metadata``, a 0-d unicode array holding a
+JSON object: format name and version, the environment signature (env id, constructor
+arguments ``kwargs``, encoder spec, action count), the ``fallback`` for unvisited states
+(``{"rule": "uniform" | "action" | "refuse", "action": int | null}``), training facts
+(episode, gamma, variant), and ``checksum``, the SHA-256 of the four arrays' bytes in
+that order. :func:`load_policy` opens it with ``allow_pickle=False``, checks format,
+version and checksum, and :meth:`PolicyArtifact.check_signature` checks that it fits an
+environment.
+
+Version 1 files (no ``visited`` array, no fallback, checksum over the first three
+arrays) still load: ``visited`` is ``visits.sum(axis=1) > 0`` and the fallback is
+uniform. Their signature has no ``kwargs``, so they fit only environments made without
+constructor arguments.
 
 >>> import tempfile, pathlib
->>> art = PolicyArtifact.from_q(np.array([[0.0, 1.0], [3.0, 2.0]]), np.ones((2, 2), dtype=np.int64), {"env_id": "demo", "observation": {"kind": "discrete", "n": 2, "start": 0}, "n_actions": 2})
+>>> art = PolicyArtifact.from_q(np.array([[0.0, 1.0], [3.0, 2.0]]), np.ones((2, 2), dtype=np.int64), {"env_id": "demo", "kwargs": {}, "observation": {"kind": "discrete", "n": 2, "start": 0}, "n_actions": 2})
 >>> path = pathlib.Path(tempfile.mkdtemp()) / "policy.npz"
 >>> _ = art.save(path); load_policy(path).actions.tolist()
 [1, 0]
@@ -28,24 +36,34 @@ from typing import Any
 
 import numpy as np
 
-from .table_policy import greedy_actions
+from .table_policy import Fallback, TablePolicy, greedy_actions
 from ..envs.encoders import encoder_from_spec
 
-__all__ = ["PolicyArtifact", "PolicyFormatError", "load_policy", "FORMAT_NAME", "FORMAT_VERSION"]
+__all__ = ["PolicyArtifact", "PolicyFormatError", "load_policy", "FORMAT_NAME", "FORMAT_VERSION", "READABLE_VERSIONS", "Fallback"]
 
 FORMAT_NAME = "qtally-policy"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
+SIGNATURE_KEYS = ("env_id", "kwargs", "observation", "n_actions")
 
 
 class PolicyFormatError(ValueError):
     """The file is not a valid qtally policy, or does not fit the environment."""
 
 
-def _checksum(q: np.ndarray, visits: np.ndarray, actions: np.ndarray) -> str:
+def _checksum(*arrays: np.ndarray) -> str:
     digest = hashlib.sha256()
-    for array in (q, visits, actions):
+    for array in arrays:
         digest.update(np.ascontiguousarray(array).tobytes())
     return digest.hexdigest()
+
+
+def _describe_signature(signature: dict) -> str:
+    """One environment signature in a line: id, constructor arguments, table shape."""
+    kwargs = signature.get("kwargs")
+    shown = "kwargs not recorded" if kwargs is None else f"kwargs={json.dumps(kwargs, sort_keys=True)}"
+    observation = signature.get("observation") or {}
+    return f"{signature.get('env_id')!r} ({shown}, observation={json.dumps(observation, sort_keys=True)}, {signature.get('n_actions')} actions)"
 
 
 @dataclass(frozen=True)
@@ -55,21 +73,48 @@ class PolicyArtifact:
     actions: np.ndarray
     signature: dict
     facts: dict = field(default_factory=dict)
+    visited: np.ndarray | None = None  # bool per state; None: derived from visits
+    fallback: Fallback = field(default_factory=Fallback)
+
+    def __post_init__(self) -> None:
+        if self.visited is None:
+            object.__setattr__(self, "visited", np.asarray(self.visits).sum(axis=1) > 0)
 
     @classmethod
-    def from_q(cls, q: np.ndarray, visits: np.ndarray, signature: dict, **facts: Any) -> "PolicyArtifact":
-        return cls(q=np.asarray(q, dtype=np.float64), visits=np.asarray(visits, dtype=np.int64), actions=greedy_actions(q).astype(np.int64), signature=dict(signature), facts=dict(facts))
+    def from_q(cls, q: np.ndarray, visits: np.ndarray, signature: dict, *, fallback: Fallback | None = None, **facts: Any) -> "PolicyArtifact":
+        visits = np.asarray(visits, dtype=np.int64)
+        fallback = fallback or Fallback()
+        fallback.check_actions(int(np.shape(q)[1]))
+        return cls(
+            q=np.asarray(q, dtype=np.float64),
+            visits=visits,
+            actions=greedy_actions(q).astype(np.int64),
+            signature=dict(signature),
+            facts=dict(facts),
+            visited=visits.sum(axis=1) > 0,
+            fallback=fallback,
+        )
 
     def encoder(self):
         return encoder_from_spec(self.signature["observation"])
+
+    def policy(self) -> TablePolicy:
+        """The table as a :class:`TablePolicy` with this file's visited states and fallback."""
+        return TablePolicy(q=self.q, visits=self.visits, fallback=self.fallback, visited=np.asarray(self.visited, dtype=bool))
+
+    @property
+    def visited_share(self) -> float:
+        """Share of all table states that training reached (see :attr:`TablePolicy.visited_share`)."""
+        return self.policy().visited_share
 
     def metadata(self) -> dict:
         return {
             "format": FORMAT_NAME,
             "format_version": FORMAT_VERSION,
             "signature": self.signature,
+            "fallback": self.fallback.to_dict(),
             "facts": self.facts,
-            "checksum": _checksum(self.q, self.visits, self.actions),
+            "checksum": _checksum(self.q, self.visits, self.actions, np.asarray(self.visited, dtype=bool)),
         }
 
     def save(self, path: str | os.PathLike) -> Path:
@@ -79,7 +124,7 @@ class PolicyArtifact:
         handle, temporary = tempfile.mkstemp(dir=path.parent, suffix=".npz.partial")
         try:
             with os.fdopen(handle, "wb") as stream:
-                np.savez_compressed(stream, q=self.q, visits=self.visits, actions=self.actions, metadata=np.array(json.dumps(self.metadata(), sort_keys=True)))
+                np.savez_compressed(stream, q=self.q, visits=self.visits, actions=self.actions, visited=np.asarray(self.visited, dtype=bool), metadata=np.array(json.dumps(self.metadata(), sort_keys=True)))
             os.replace(temporary, path)
         except BaseException:
             Path(temporary).unlink(missing_ok=True)
@@ -87,12 +132,17 @@ class PolicyArtifact:
         return path
 
     def check_signature(self, signature: dict) -> None:
-        """Refuse to act in an environment this policy was not learned for."""
-        mine = {k: self.signature.get(k) for k in ("observation", "n_actions")}
-        theirs = {k: signature.get(k) for k in ("observation", "n_actions")}
-        if json.dumps(mine, sort_keys=True) != json.dumps(theirs, sort_keys=True):
+        """Refuse to act in an environment this policy was not learned for.
+
+        The environment id, the constructor arguments, the observation encoding and the
+        action count must all match: a policy learned at other prices or on another map
+        has the same table shape but answers a different question. The error names both
+        sides and what differs.
+        """
+        differ = [k for k in SIGNATURE_KEYS if json.dumps(self.signature.get(k), sort_keys=True) != json.dumps(signature.get(k), sort_keys=True)]
+        if differ:
             raise PolicyFormatError(
-                f"policy was learned on {self.signature.get('env_id')!r} with a different observation table or action count than {signature.get('env_id')!r}"
+                f"policy learned on {_describe_signature(self.signature)} does not fit {_describe_signature(signature)}: {', '.join(differ)} differ"
             )
 
 
@@ -101,6 +151,7 @@ def load_policy(path: str | os.PathLike) -> PolicyArtifact:
     try:
         with np.load(path, allow_pickle=False) as archive:
             q, visits, actions = archive["q"], archive["visits"], archive["actions"]
+            visited = archive["visited"] if "visited" in archive.files else None
             metadata = json.loads(str(archive["metadata"]))
     except FileNotFoundError:
         raise PolicyFormatError(f"policy file {os.fspath(path)!r} does not exist") from None
@@ -108,8 +159,25 @@ def load_policy(path: str | os.PathLike) -> PolicyArtifact:
         raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file ({exc})") from None
     if metadata.get("format") != FORMAT_NAME:
         raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file")
-    if metadata.get("format_version") != FORMAT_VERSION:
-        raise PolicyFormatError(f"{os.fspath(path)!r} has policy format version {metadata.get('format_version')}, this qtally reads version {FORMAT_VERSION}")
-    if metadata.get("checksum") != _checksum(q, visits, actions):
+    version = metadata.get("format_version")
+    if version not in READABLE_VERSIONS:
+        raise PolicyFormatError(f"{os.fspath(path)!r} has policy format version {version}, this qtally reads versions {', '.join(map(str, READABLE_VERSIONS))}")
+    if version == 1:
+        checked = (q, visits, actions)
+        visited = np.asarray(visits).sum(axis=1) > 0
+    elif visited is None or visited.dtype != np.bool_:
+        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file (no boolean 'visited' array)")
+    else:
+        checked = (q, visits, actions, visited)
+    if metadata.get("checksum") != _checksum(*checked):
         raise PolicyFormatError(f"{os.fspath(path)!r} failed its checksum: the file is damaged or was edited")
-    return PolicyArtifact(q=q, visits=visits, actions=actions, signature=metadata["signature"], facts=metadata.get("facts", {}))
+    if q.ndim != 2 or visits.shape != q.shape or actions.shape != q.shape[:1] or visited.shape != q.shape[:1]:
+        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file (array shapes do not agree)")
+    try:
+        fallback = Fallback.from_dict(metadata.get("fallback")) if version >= 2 else Fallback()
+        fallback.check_actions(int(q.shape[1]))
+    except (ValueError, TypeError, AttributeError) as exc:
+        raise PolicyFormatError(f"{os.fspath(path)!r} has an invalid fallback ({exc})") from None
+    if not isinstance(metadata.get("signature"), dict):
+        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file (no environment signature)")
+    return PolicyArtifact(q=q, visits=visits, actions=actions, signature=metadata["signature"], facts=metadata.get("facts", {}), visited=visited, fallback=fallback)

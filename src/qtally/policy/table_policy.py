@@ -28,11 +28,24 @@ choices.
 >>> a, p = epsilon_greedy_decision(q[0].tolist(), 0.3, 0.50)   # u >= epsilon: greedy, ties to the lowest index
 >>> a, round(p, 6)
 (1, 0.8)
+
+Unvisited states: a state where no action ever absorbed a return has no learned action
+(its row is still the initial value, so the tie rule would pick action 0 for no reason).
+:meth:`TablePolicy.act` never answers there silently: it follows the declared
+:class:`Fallback`, a uniformly random action (one uniform per decision, like exploration:
+``floor(u * |A|)``), a fixed action, or a refusal (:class:`UnvisitedStateError`).
+
+>>> policy = TablePolicy(q, visits=np.array([[1, 2, 0], [0, 0, 0]]), fallback=Fallback("action", 2))
+>>> policy.act(np.array([0, 1])).tolist(), policy.visited_share
+([1, 2], 0.5)
+>>> TablePolicy(q, visits=np.array([[1, 2, 0], [0, 0, 0]])).act(np.array([0, 1]), uniforms=np.array([0.9, 0.5])).tolist()
+[1, 1]
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Callable
 
 import numpy as np
 
@@ -44,9 +57,53 @@ __all__ = [
     "epsilon_greedy_decision",
     "sample_action",
     "TablePolicy",
+    "Fallback",
+    "FALLBACK_RULES",
+    "UnvisitedStateError",
 ]
 
 TIE_RULE = "lowest index"
+FALLBACK_RULES = ("uniform", "action", "refuse")
+
+
+class UnvisitedStateError(ValueError):
+    """A policy with the ``refuse`` fallback was asked to act in a state training never reached."""
+
+
+@dataclass(frozen=True)
+class Fallback:
+    """What a learned table does in a state training never reached.
+
+    ``uniform``: a uniformly random action, one uniform per decision (``floor(u * |A|)``);
+    ``action``: always ``action``; ``refuse``: raise :class:`UnvisitedStateError`.
+    Stored in the policy file and the pyfunc model as ``{"rule": ..., "action": ...}``.
+    """
+
+    rule: str = "uniform"
+    action: int | None = None
+
+    def __post_init__(self) -> None:
+        if self.rule not in FALLBACK_RULES:
+            raise ValueError(f"policy_fallback.rule={self.rule!r} is not one of {', '.join(FALLBACK_RULES)}")
+        if self.rule == "action":
+            if self.action is None or isinstance(self.action, bool) or int(self.action) != self.action or self.action < 0:
+                raise ValueError(f"policy_fallback.action={self.action!r}: rule 'action' needs a non-negative action index")
+            object.__setattr__(self, "action", int(self.action))
+        elif self.action is not None:
+            raise ValueError(f"policy_fallback.action={self.action!r} is only used with policy_fallback.rule=action, not {self.rule!r}")
+
+    def check_actions(self, n_actions: int) -> None:
+        """Refuse a fixed action the environment does not have."""
+        if self.rule == "action" and not self.action < n_actions:
+            raise ValueError(f"policy_fallback.action={self.action} is not an action here: allowed 0..{n_actions - 1}")
+
+    def to_dict(self) -> dict:
+        return {"rule": self.rule, "action": self.action}
+
+    @classmethod
+    def from_dict(cls, data: dict | None) -> "Fallback":
+        data = data or {}
+        return cls(rule=data.get("rule", "uniform"), action=data.get("action"))
 
 
 def greedy_actions(q: np.ndarray, atol: float = 0.0) -> np.ndarray:
@@ -126,10 +183,15 @@ class TablePolicy:
 
     ``visits`` (returns absorbed per pair) tells which states training reached; states
     never reached have no learned action, and :attr:`visited_states` says which they are.
+    ``visited`` overrides that with an explicit bool per state (as a policy file stores
+    it); with neither, every state counts as visited. :meth:`act` follows ``fallback``
+    where the state was not visited.
     """
 
     q: np.ndarray
     visits: np.ndarray | None = None
+    fallback: Fallback = field(default_factory=Fallback)
+    visited: np.ndarray | None = None
 
     @property
     def n_states(self) -> int:
@@ -154,6 +216,54 @@ class TablePolicy:
     @property
     def visited_states(self) -> np.ndarray:
         """Bool ``(S,)``: states where at least one action has absorbed a return."""
+        if self.visited is not None:
+            return np.asarray(self.visited, dtype=bool)
         if self.visits is None:
             return np.ones(self.n_states, dtype=bool)
         return np.asarray(self.visits).sum(axis=1) > 0
+
+    @property
+    def visited_share(self) -> float:
+        """Share of **all** table states that training reached.
+
+        The table does not know which states are terminal (nothing is ever learned there),
+        so a fully trained table reports less than 1 when it has terminal or unreachable
+        states; :meth:`visited_share_among` takes the states that matter, e.g.
+        ``environment.decision_states(model)``.
+        """
+        return float(self.visited_states.mean()) if self.n_states else 0.0
+
+    def visited_share_among(self, states: np.ndarray) -> float:
+        """Share of the states selected by the bool mask ``states`` that training reached."""
+        mask = np.asarray(states, dtype=bool)
+        return float(self.visited_states[mask].mean()) if mask.any() else 0.0
+
+    def act(self, states: np.ndarray, uniforms: np.ndarray | None = None, describe: Callable[[int], str] | None = None) -> np.ndarray:
+        """The action for each table index in ``states``: greedy where visited, the fallback elsewhere.
+
+        ``uniforms`` (one per state, in [0, 1)) feeds the ``uniform`` fallback; it is
+        required with that rule whatever the states are, so that every decision consumes
+        one uniform and a caller never depends on which states happen to be visited.
+        ``describe`` turns a table index into the state in its own terms for the
+        ``refuse`` error (an encoder's ``describe``); without it the error names indices.
+        """
+        states = np.asarray(states, dtype=np.int64)
+        if self.fallback.rule == "uniform" and uniforms is None:
+            raise ValueError("the uniform fallback needs uniforms: pass one uniform in [0, 1) per state (the acting stream)")
+        actions = greedy_actions(self.q)[states]
+        unvisited = ~self.visited_states[states]
+        if not unvisited.any():
+            return actions
+        if self.fallback.rule == "refuse":
+            missing = sorted({int(s) for s in states[unvisited]})
+            shown = [describe(s) if describe else str(s) for s in missing[:5]]
+            more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
+            label = "state" if len(missing) == 1 else "states"
+            raise UnvisitedStateError(f"the policy never learned an action for {label} {'; '.join(shown)}{more} (fallback rule: refuse)")
+        if self.fallback.rule == "action":
+            self.fallback.check_actions(self.n_actions)
+            actions[unvisited] = self.fallback.action
+            return actions
+        u = np.broadcast_to(np.asarray(uniforms, dtype=np.float64), states.shape)
+        actions[unvisited] = np.minimum(np.floor(u[unvisited] * self.n_actions).astype(np.int64), self.n_actions - 1)
+        return actions
