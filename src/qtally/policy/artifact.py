@@ -30,6 +30,8 @@ import hashlib
 import json
 import os
 import tempfile
+import zipfile
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -155,9 +157,9 @@ def load_policy(path: str | os.PathLike) -> PolicyArtifact:
             metadata = json.loads(str(archive["metadata"]))
     except FileNotFoundError:
         raise PolicyFormatError(f"policy file {os.fspath(path)!r} does not exist") from None
-    except (KeyError, ValueError, OSError, json.JSONDecodeError) as exc:
+    except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error, json.JSONDecodeError) as exc:
         raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file ({exc})") from None
-    if metadata.get("format") != FORMAT_NAME:
+    if not isinstance(metadata, dict) or metadata.get("format") != FORMAT_NAME:
         raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file")
     version = metadata.get("format_version")
     if version not in READABLE_VERSIONS:
