@@ -24,6 +24,8 @@ from .control.schedules import make_schedule
 from .control.variants import make_variant
 from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
+from .policy.artifact import PolicyArtifact
+from .policy.table_policy import Fallback
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
@@ -110,6 +112,12 @@ def prepare(cfg: DictConfig):
         evaluation_environment = make_environment(spec)
     except EnvironmentConfigError as exc:
         raise QtallyError(str(exc)) from None
+    try:
+        policy_fallback(cfg).check_actions(environment.n_actions)
+    except ValueError as exc:
+        environment.close()
+        evaluation_environment.close()
+        raise QtallyError(str(exc)) from None
     if variant.needs_start_control and environment.start_control is None:
         environment.close()
         evaluation_environment.close()
@@ -118,6 +126,12 @@ def prepare(cfg: DictConfig):
             "use variant=on_policy or variant=off_policy, or implement start_states()/reset_to() (see DEVELOPERS.md)"
         )
     return variant, schedule, environment, evaluation_environment
+
+
+def policy_fallback(cfg: DictConfig) -> Fallback:
+    """The ``policy_fallback`` block as the policy's :class:`Fallback` (validated by ``validate``)."""
+    block = cfg.get("policy_fallback") or {}
+    return Fallback(rule=block.get("rule", "uniform"), action=block.get("action"))
 
 
 def run_name(cfg: DictConfig) -> str:
@@ -197,6 +211,9 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     finally:
         if progress is not None:
             progress.close()
+    # The saved policy declares what it does where training never reached.
+    outcome.artifact = PolicyArtifact.from_q(outcome.values.q, outcome.values.visits, environment.signature(), fallback=policy_fallback(cfg), **outcome.artifact.facts)
+    mlflow.log_metric("visited_state_share", outcome.artifact.visited_share)
     with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
         scratch_dir = Path(scratch)
         log_config(cfg, scratch_dir)

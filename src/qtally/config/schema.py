@@ -13,7 +13,7 @@ from typing import Any, Optional
 from hydra.core.config_store import ConfigStore
 from omegaconf import MISSING
 
-__all__ = ["EnvConfig", "VariantConfig", "ScheduleConfig", "TrackingConfig", "TrainConfig", "register_schema"]
+__all__ = ["EnvConfig", "VariantConfig", "ScheduleConfig", "TrackingConfig", "PolicyFallbackConfig", "TrainConfig", "register_schema"]
 
 
 @dataclass
@@ -63,11 +63,20 @@ class TrackingConfig:
 
 
 @dataclass
+class PolicyFallbackConfig:
+    """What the saved policy does in states training never reached (qtally.policy.table_policy.Fallback)."""
+
+    rule: str = "uniform"  # uniform | action | refuse
+    action: Optional[int] = None  # the fixed action for rule=action
+
+
+@dataclass
 class TrainConfig:
     env: EnvConfig = MISSING
     variant: VariantConfig = MISSING
     schedule: ScheduleConfig = MISSING
     tracking: TrackingConfig = field(default_factory=TrackingConfig)
+    policy_fallback: PolicyFallbackConfig = field(default_factory=PolicyFallbackConfig)
     episodes: int = 5000
     gamma: float = 0.99
     seed: int = 0

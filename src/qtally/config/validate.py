@@ -9,6 +9,7 @@ from omegaconf import DictConfig
 from ..control.schedules import SCHEDULE_KINDS
 from ..control.variants import VARIANT_NAMES
 from ..control.truncation import TRUNCATION_CHOICES
+from ..policy.table_policy import FALLBACK_RULES
 
 __all__ = ["ConfigError", "validate", "validate_env", "schedule_parameters"]
 
@@ -51,6 +52,22 @@ def validate_env(env: DictConfig) -> None:
         raise ConfigError(f"env.step_cap={step_cap} must be a positive number of steps, or null for the default derived from the state count")
 
 
+def validate_fallback(fallback: DictConfig | None) -> None:
+    """``policy_fallback``: a known rule, and a fixed action exactly when the rule is ``action``.
+
+    Whether the action exists is checked once the environment is made (its action count).
+    """
+    if fallback is None:
+        return
+    rule, action = fallback.get("rule", "uniform"), fallback.get("action")
+    if rule not in FALLBACK_RULES:
+        raise ConfigError(f"policy_fallback.rule={rule!r} is unknown; choose one of {', '.join(FALLBACK_RULES)}")
+    if rule == "action" and (action is None or action < 0):
+        raise ConfigError(f"policy_fallback.action={action} must be an action index (0 or more) when policy_fallback.rule=action")
+    if rule != "action" and action is not None:
+        raise ConfigError(f"policy_fallback.action={action} is only used with policy_fallback.rule=action, not rule={rule!r}; set it to null")
+
+
 def validate(cfg: DictConfig) -> None:
     if cfg.episodes <= 0:
         raise ConfigError(f"episodes={cfg.episodes} must be a positive number of episodes")
@@ -75,6 +92,7 @@ def validate(cfg: DictConfig) -> None:
         raise ConfigError(f"schedule.decay_episodes={parameters['decay_episodes']} must be a positive episode count")
     if cfg.schedule.kind.startswith("glie") and not parameters["scale"] > 0:  # written so nan fails too
         raise ConfigError(f"schedule.scale={parameters['scale']} must be positive")
+    validate_fallback(cfg.get("policy_fallback"))
     for key in ("log_every", "eval_episodes"):
         if cfg[key] <= 0:
             raise ConfigError(f"{key}={cfg[key]} must be positive")
