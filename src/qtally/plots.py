@@ -59,17 +59,26 @@ def _colour_range(values: np.ndarray) -> tuple[float, float]:
     return float(finite.min()), float(finite.max())
 
 
-def grid_maps(values: np.ndarray, actions: np.ndarray, shape: tuple[int, int], arrows: Sequence[str], path: Path, title: str, blocked: np.ndarray | None = None) -> Path:
-    """Heat map of V over a grid with the greedy action drawn in each cell."""
+UNVISITED_MARK = "?"  # a cell training never reached: no learned action, the policy's fallback acts there
+
+
+def grid_maps(values: np.ndarray, actions: np.ndarray, shape: tuple[int, int], arrows: Sequence[str], path: Path, title: str, blocked: np.ndarray | None = None, unvisited: np.ndarray | None = None) -> Path:
+    """Heat map of V over a grid with the greedy action drawn in each cell; ``unvisited`` cells get a grey "?"."""
     grid = values.reshape(shape)
     fig, ax = plt.subplots(figsize=(1.0 + 0.6 * shape[1], 0.8 + 0.6 * shape[0]))
+    ax.set_facecolor("#9e9e9e")  # cells without a value (never reached) show grey, not white
     vmin, vmax = _colour_range(grid)
     image = ax.imshow(grid, cmap="viridis", vmin=vmin, vmax=vmax)
     fig.colorbar(image, ax=ax, fraction=0.046, pad=0.04, label="value")
     for index, action in enumerate(actions):
         r, c = divmod(index, shape[1])
-        label = "·" if blocked is not None and blocked[index] else arrows[int(action)]
-        ax.text(c, r, label, ha="center", va="center", color="white", fontsize=11, fontweight="bold")
+        if blocked is not None and blocked[index]:
+            label, colour = "·", "white"
+        elif unvisited is not None and unvisited[index]:
+            label, colour = UNVISITED_MARK, "black"
+        else:
+            label, colour = arrows[int(action)], "white"
+        ax.text(c, r, label, ha="center", va="center", color=colour, fontsize=11, fontweight="bold")
     ax.set_xticks([])
     ax.set_yticks([])
     ax.set_title(title, fontsize=10)
@@ -90,19 +99,23 @@ def two_factor_maps(
     panel_titles: Sequence[str],
     path: Path,
     title: str,
+    unvisited: np.ndarray | None = None,
 ) -> Path:
     """Side-by-side panels (one per value of a third factor): V as colour, greedy action as a letter.
 
-    ``values`` and ``actions`` are ``(panels, rows, columns)`` arrays.
+    ``values``, ``actions`` and ``unvisited`` (bool, cells training never reached, drawn
+    as a "?" on grey) are ``(panels, rows, columns)`` arrays.
     """
     panels = values.shape[0]
     fig, axes = plt.subplots(1, panels, figsize=(4.2 * panels, 4.2), squeeze=False)
     vmin, vmax = _colour_range(values)
     for k, ax in enumerate(axes[0]):
+        ax.set_facecolor("#9e9e9e")  # mid grey: apart from every colour of the value scale
         image = ax.imshow(values[k], cmap="coolwarm", vmin=vmin, vmax=vmax, origin="lower", aspect="auto")
         for r in range(values.shape[1]):
             for c in range(values.shape[2]):
-                ax.text(c, r, action_letters[int(actions[k, r, c])], ha="center", va="center", fontsize=7)
+                missing = unvisited is not None and unvisited[k, r, c]
+                ax.text(c, r, UNVISITED_MARK if missing else action_letters[int(actions[k, r, c])], ha="center", va="center", fontsize=7)
         ax.set_xticks(range(len(column_labels)), [str(x) for x in column_labels], fontsize=7)
         ax.set_yticks(range(len(row_labels)), [str(x) for x in row_labels], fontsize=7)
         ax.set_xlabel(column_name)

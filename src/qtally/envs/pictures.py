@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..plots import grid_maps, two_factor_maps
+from ..plots import UNVISITED_MARK, grid_maps, two_factor_maps
 from .factory import TabularEnvironment
 
 __all__ = ["policy_pictures"]
@@ -31,26 +31,31 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
     name = type(core).__name__
     v = _state_values(q, visits) if values is None else np.asarray(values, dtype=float)
     path = directory / f"{label}_policy_map.png"
+    # States no episode acted in have no learned action: marked "?" (the policy's fallback acts there).
+    unvisited = None if visits is None else np.asarray(visits).sum(axis=1) == 0
+    note = f"\n{UNVISITED_MARK}: never reached in training, the fallback acts" if unvisited is not None and unvisited.any() else ""
     if name == "FrozenLakeEnv":
         desc = np.asarray(core.desc).astype(str)
         blocked = np.isin(desc.ravel(), ("H", "G"))
-        return [grid_maps(v, actions, desc.shape, "←↓→↑", path, f"{label}: value and greedy action (· hole or goal)", blocked)]
+        return [grid_maps(v, actions, desc.shape, "←↓→↑", path, f"{label}: value and greedy action (· hole or goal){note}", blocked, unvisited)]
     if name == "CliffWalkingEnv":
         shape = tuple(core.shape)
         blocked = core._cliff.ravel().copy()
         blocked[-1] = True
-        return [grid_maps(v, actions, shape, "↑→↓←", path, f"{label}: value and greedy action (· cliff or goal)", blocked)]
+        return [grid_maps(v, actions, shape, "↑→↓←", path, f"{label}: value and greedy action (· cliff or goal){note}", blocked, unvisited)]
     if name == "BlackjackEnv":
         encoder = environment.encoder
         sums, dealers = list(range(12, 22)), list(range(1, 11))
         grid_v = np.full((2, len(sums), len(dealers)), np.nan)
         grid_a = np.zeros((2, len(sums), len(dealers)), dtype=int)
+        grid_u = np.zeros((2, len(sums), len(dealers)), dtype=bool)
         for k in (0, 1):
             for r, s in enumerate(sums):
                 for c, d in enumerate(dealers):
                     index = encoder.encode((s, d, k))
                     grid_v[k, r, c], grid_a[k, r, c] = v[index], actions[index]
-        return [two_factor_maps(grid_v, grid_a, sums, ["A"] + dealers[1:], "player sum", "dealer showing", "SH", ["no usable ace", "usable ace"], path, f"{label}: value and greedy action (S stick, H hit)")]
+                    grid_u[k, r, c] = unvisited is not None and unvisited[index]
+        return [two_factor_maps(grid_v, grid_a, sums, ["A"] + dealers[1:], "player sum", "dealer showing", "SH", ["no usable ace", "usable ace"], path, f"{label}: value and greedy action (S stick, H hit){note}", grid_u)]
     if name == "RestockEnv":
         encoder = environment.encoder
         sizes = encoder.sizes
@@ -61,13 +66,15 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
         panels = [0] if len(sizes) < 3 else [0, sizes[2] - 1]
         grid_v = np.full((len(panels), len(days), len(stock)), np.nan)
         grid_a = np.zeros_like(grid_v, dtype=int)
+        grid_u = np.zeros_like(grid_v, dtype=bool)
         for k, older in enumerate(panels):
             for r, day in enumerate(days):
                 for c, units in enumerate(stock):
                     observation = (day, units) + ((older,) + (0,) * (len(sizes) - 3) if len(sizes) >= 3 else ())
                     index = encoder.encode(observation)
                     grid_v[k, r, c], grid_a[k, r, c] = v[index], actions[index]
+                    grid_u[k, r, c] = unvisited is not None and unvisited[index]
         letters = [str(n) for n in range(environment.n_actions)]
         titles = [f"{encoder.names[2]}={older}" for older in panels] if len(sizes) >= 3 else [""]
-        return [two_factor_maps(grid_v, grid_a, days, stock, "day", encoder.names[1], letters, titles, path, f"{label}: value and order quantity")]
+        return [two_factor_maps(grid_v, grid_a, days, stock, "day", encoder.names[1], letters, titles, path, f"{label}: value and order quantity{note}", grid_u)]
     return []
