@@ -41,6 +41,7 @@ EVALUATE_CASES = [
     (["env=frozen_lake_4x4", "env.kwargs.map_name=5x5"], ["env.kwargs=", "'map_name': '5x5'", "the environment refused them"]),
     (["env=frozen_lake_4x4", "env.max_episode_steps=0"], ["env.max_episode_steps=0", "positive number of steps"]),
     (["env.kwargs.natural=true"], ["env.kwargs.natural", "env=blackjack", "(it lists: sab)", "+env.kwargs.natural="]),
+    (["env=frozen_lake_4x3"], ["env='frozen_lake_4x3'", "frozen_lake_4x4"]),
     (["env=frozen_lake_4x4", "env.max_episode_steps=-1"], ["env.max_episode_steps=-1", "positive number of steps"]),
     (["env=frozen_lake_4x4", "env.step_cap=0"], ["env.step_cap=0", "positive number of steps"]),
     (["estimate=w"], ["estimate='w'", "v, q, both"]),

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import sys
+
 import hydra
 from omegaconf import DictConfig
 
 from ..config.evaluate_schema import register_evaluate_schema
-from .console import PredictionProgress, pre_check_overrides, quiet_libraries, run_reporting_errors
+from .console import PredictionProgress, fail, pre_check_overrides, quiet_libraries, run_reporting_errors
 
 PROGRAM = "qtally-evaluate"
 
@@ -33,4 +35,9 @@ def main() -> None:
     register_evaluate_schema()
     schema = EvaluateConfig(env=EnvConfig(), policy=PolicyConfig(), behaviour=BehaviourConfig(), start=StartConfig())
     pre_check_overrides(PROGRAM, schema, ("env",), "configs/evaluate.yaml")
+    from .group_choices import first_bad_choice
+
+    choice_problem = first_bad_choice(sys.argv[1:], ("env",))
+    if choice_problem:
+        fail(PROGRAM, choice_problem)
     _evaluate()
