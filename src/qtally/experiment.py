@@ -207,12 +207,11 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
             probes=probes,
             progress=progress,
             facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
+            fallback=policy_fallback(cfg),
         )
     finally:
         if progress is not None:
             progress.close()
-    # The saved policy declares what it does where training never reached.
-    outcome.artifact = PolicyArtifact.from_q(outcome.values.q, outcome.values.visits, environment.signature(), fallback=policy_fallback(cfg), **outcome.artifact.facts)
     mlflow.log_metric("visited_state_share", outcome.artifact.visited_share)
     with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
         scratch_dir = Path(scratch)

@@ -33,7 +33,7 @@ from .engine.episodes import GymEpisodes
 from .envs.factory import TabularEnvironment, make_environment
 from .evaluate.rollouts import greedy_rollout_returns, summarise_returns
 from .policy.artifact import PolicyArtifact
-from .policy.table_policy import epsilon_greedy_decision, greedy_actions
+from .policy.table_policy import Fallback, epsilon_greedy_decision, greedy_actions
 from .tracking.sink import NullRecorder, Recorder
 
 __all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATION_CHOICES", "ProgressSink"]
@@ -87,6 +87,7 @@ class Trainer:
         progress: ProgressSink | None = None,
         facts: Mapping[str, object] | None = None,
         state: TrainerState | None = None,
+        fallback: Fallback | None = None,
     ):
         check_truncation(settings.truncation)
         self.environment = environment
@@ -97,6 +98,7 @@ class Trainer:
         self.probes = tuple(probes)
         self.progress = progress
         self.facts = dict(facts or {})
+        self.fallback = fallback  # what snapshots and the final policy do in states training never reached
         self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
         self.episodes = GymEpisodes(environment, self.step_cap)
         self._evaluation_environment = evaluation_environment
@@ -114,7 +116,7 @@ class Trainer:
 
     def snapshot(self) -> PolicyArtifact:
         values = self.state.values
-        return PolicyArtifact.from_q(values.q, values.visits, self.environment.signature(), episode=self.state.episode, **self.facts)
+        return PolicyArtifact.from_q(values.q, values.visits, self.environment.signature(), fallback=self.fallback, episode=self.state.episode, **self.facts)
 
     def _log(self, metrics: Mapping[str, float], step: int) -> None:
         self.recorder.log_metrics(metrics, step)
@@ -239,6 +241,6 @@ def train(
     """Run Monte Carlo control for ``settings.episodes`` episodes; return the table and the final policy.
 
     ``options`` are :class:`Trainer`'s keyword arguments (recorder, evaluation_environment,
-    probes, progress, facts, state).
+    probes, progress, facts, state, fallback).
     """
     return Trainer(environment, variant, schedule, settings, **options).run()
