@@ -24,7 +24,6 @@ from .control.schedules import make_schedule
 from .control.variants import make_variant
 from .envs.factory import EnvironmentConfigError, EnvironmentSpec, TabularEnvironment, make_environment
 from .errors import QtallyError
-from .policy.artifact import PolicyArtifact
 from .policy.table_policy import Fallback
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .tracking.sweep import child_tags, current_sweep
