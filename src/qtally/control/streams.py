@@ -25,9 +25,10 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["RandomStreams", "UniformDraws", "evaluation_base", "evaluation_seeds", "SEED_MODULUS"]
+__all__ = ["RandomStreams", "UniformDraws", "evaluation_base", "evaluation_seeds", "rollout_seeds", "SEED_MODULUS", "ROLLOUT_SEED_FLOOR"]
 
 SEED_MODULUS = 2**31 - 1  # seeds handed to environments stay in the 31-bit range every library accepts
+ROLLOUT_SEED_FLOOR = 2**31  # rollout seeds start here, above every training and evaluation seed
 _BLOCK = 1024
 
 
@@ -75,6 +76,25 @@ def evaluation_base(seed: int, eval_seed: int | None = None) -> int:
 def evaluation_seeds(base: int, n: int) -> np.ndarray:
     """The ``n`` fixed evaluation seeds that start at ``base``: the same at every evaluation of a run."""
     return (int(base) + np.arange(n, dtype=np.int64)) % SEED_MODULUS
+
+
+def rollout_seeds(base: int, n: int) -> np.ndarray:
+    """The ``n`` environment seeds of a rollout: all in [2**31, 2**32), so disjoint from training and evaluation.
+
+    Every seed training and evaluation hand to an environment (``env_seed``, the
+    evaluation seeds) is reduced modulo ``SEED_MODULUS = 2**31 - 1``, so it is below
+    2**31 - 1; a rollout therefore never replays an episode the policy was trained or
+    selected on. ``base`` (any non-negative integer) picks where the block starts.
+
+    >>> seeds = rollout_seeds(7, 3)
+    >>> seeds.tolist() == [2**31 + 7, 2**31 + 8, 2**31 + 9]
+    True
+    >>> bool(rollout_seeds(2**31 - 1, 2).min() >= 2**31) and bool(rollout_seeds(2**31 - 1, 2).max() < 2**32)
+    True
+    """
+    if int(base) < 0:
+        raise ValueError(f"seed={base} must be a non-negative integer")
+    return ROLLOUT_SEED_FLOOR + (int(base) + np.arange(n, dtype=np.int64)) % ROLLOUT_SEED_FLOOR
 
 
 class RandomStreams:

@@ -31,7 +31,7 @@ from ..policy.rules import (
     uniform_policy,
 )
 
-__all__ = ["PolicyTable", "POLICY_SOURCES", "policy_table", "quiet_mlflow"]
+__all__ = ["PolicyTable", "POLICY_SOURCES", "policy_table", "quiet_mlflow", "run_policy_artifact", "model_policy_artifact", "model_source_run"]
 
 
 @dataclass(frozen=True)
@@ -74,14 +74,70 @@ def quiet_mlflow():
 
 
 def _from_run(run_id: str, environment: TabularEnvironment, key: str) -> np.ndarray:
+    artifact = run_policy_artifact(run_id, f"{key}.run_id")
+    try:
+        artifact.check_signature(environment.signature())
+    except ValueError as exc:
+        raise QtallyError(f"{key}.run_id={run_id!r}: {exc}") from None
+    return deterministic_policy(artifact.actions, environment.n_actions)
+
+
+def run_policy_artifact(run_id: str, key: str = "run_id"):
+    """The verified policy file (``policy_file/policy.npz``) of a training run, as a PolicyArtifact."""
     import mlflow
+
+    from ..policy.artifact import PolicyFormatError, load_policy
 
     with tempfile.TemporaryDirectory(prefix="qtally-policy-") as scratch, quiet_mlflow():
         try:
             local = mlflow.artifacts.download_artifacts(run_id=run_id, artifact_path="policy_file/policy.npz", dst_path=scratch)
         except Exception as exc:  # unknown run, no such artifact, unreachable store
-            raise QtallyError(f"{key}.run_id={run_id!r}: cannot fetch its policy_file/policy.npz ({first_line(exc)})") from None
-        return _from_policy_file(local, environment, f"{key}.run_id={run_id!r}")
+            raise QtallyError(f"{key}={run_id!r}: cannot fetch its policy_file/policy.npz ({first_line(exc)})") from None
+        try:
+            return load_policy(local)
+        except PolicyFormatError as exc:
+            raise QtallyError(f"{key}={run_id!r}: {exc}") from None
+
+
+def model_source_run(uri: str) -> str | None:
+    """The training run behind a model URI: ``runs:/<id>/...`` directly, ``models:/<name>@<alias>`` or
+    ``models:/<name>/<version>`` through the registry; None where it cannot be told."""
+    if uri.startswith("runs:/"):
+        return uri[len("runs:/"):].split("/", 1)[0] or None
+    if not uri.startswith("models:/"):
+        return None
+    from mlflow.tracking import MlflowClient
+
+    rest = uri[len("models:/"):]
+    try:
+        client = MlflowClient()
+        if "@" in rest:
+            name, alias = rest.split("@", 1)
+            return client.get_model_version_by_alias(name, alias).run_id
+        name, _, version = rest.partition("/")
+        return client.get_model_version(name, version).run_id if version.isdigit() else None
+    except Exception:
+        return None
+
+
+def model_policy_artifact(uri: str, key: str = "model"):
+    """The verified policy file carried by a logged or registered model (``runs:/``, ``models:/``)."""
+    import mlflow
+
+    from ..policy.artifact import PolicyFormatError, load_policy
+
+    with tempfile.TemporaryDirectory(prefix="qtally-policy-") as scratch, quiet_mlflow():
+        try:
+            local = Path(mlflow.artifacts.download_artifacts(artifact_uri=uri, dst_path=scratch))
+        except Exception as exc:  # unknown model, alias or version, unreachable store
+            raise QtallyError(f"{key}={uri!r}: cannot fetch the model ({first_line(exc)})") from None
+        files = sorted(local.rglob("*.npz"))
+        if not files:
+            raise QtallyError(f"{key}={uri!r}: the model carries no qtally policy file; give a model logged by qtally-train")
+        try:
+            return load_policy(files[0])
+        except PolicyFormatError as exc:
+            raise QtallyError(f"{key}={uri!r}: {exc}") from None
 
 
 def _from_model(uri: str, environment: TabularEnvironment, key: str) -> np.ndarray:
