@@ -14,7 +14,7 @@ from qtally.control.returns import discounted_returns, visit_mask
 from qtally.control.schedules import Constant, ExponentialDecay, GlieEpisodes, GlieVisits, LinearDecay, make_schedule
 from qtally.control.streams import SEED_MODULUS, RandomStreams, UniformDraws, evaluation_seeds
 from qtally.control.truncation import check_truncation, default_step_cap, resolve_step_cap
-from qtally.policy.table_policy import TablePolicy, sample_action
+from qtally.policy.table_policy import TablePolicy, epsilon_greedy_decision, epsilon_soft_probabilities, greedy_actions, sample_action
 
 
 # ---------------------------------------------------------------- schedules
@@ -167,3 +167,28 @@ def test_table_sampling_scales_the_uniform_by_the_row_total():
     grid = (np.arange(10_000) + 0.5) / 10_000
     picks = np.bincount([sample_action(cumulative, row, float(u))[0] for u in grid], minlength=3)
     np.testing.assert_allclose(picks / grid.size, [0.2, 0.0, 0.8], atol=1e-3)
+
+
+def test_the_draw_protocol_explores_only_strictly_below_epsilon():
+    # u < epsilon explores, u >= epsilon is greedy. Breakages caught: `<=` (at u == epsilon the
+    # last action would be forced, and a greedy policy, epsilon 0, would divide by zero at u = 0).
+    row = [0.0, 3.0, 1.0]
+    assert epsilon_greedy_decision(row, 0.5, 0.5) == (1, pytest.approx(0.5 + 0.5 / 3))
+    assert epsilon_greedy_decision(row, 0.0, 0.0) == (1, 1.0)
+
+
+@pytest.mark.parametrize("epsilon, shown", [(1.5, "1.5..1.5"), (-0.1, "-0.1..-0.1"), (np.array([0.2, 1.5]), "0.2..1.5")])
+def test_epsilon_soft_probabilities_refuse_an_epsilon_outside_the_unit_interval(epsilon, shown):
+    # Breakage caught: the range check joined with `&` (never true) or widened.
+    with pytest.raises(ValueError, match=rf"^epsilon must be in \[0, 1\], got {shown}$"):
+        epsilon_soft_probabilities(np.zeros((2, 3)), epsilon)
+
+
+def test_greedy_actions_with_a_tolerance_compare_within_each_row():
+    # Within atol of the row's best counts as tied, the edge included; the lowest such index
+    # wins. Breakages caught: the best taken over the whole table, `>` for `>=`, the
+    # tolerance ignored for atol = 1.
+    assert greedy_actions(np.array([[0.0, 5.0], [10.0, 20.0]]), atol=1.0).tolist() == [1, 1]
+    assert greedy_actions(np.array([[1.0, 2.0]]), atol=1.0).tolist() == [0]
+    assert greedy_actions(np.array([[1.0, 1.5]]), atol=1.0).tolist() == [0]
+    assert greedy_actions(np.array([[1.0, 1.5]])).tolist() == [1]

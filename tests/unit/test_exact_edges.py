@@ -143,12 +143,14 @@ def test_discounted_ties_go_to_the_lowest_index():
 def test_a_row_that_leaks_probability_counts_as_an_end():
     # State 0 stays with probability 0.5 and otherwise leaves the model (its row sums to
     # 0.5): under gamma 1 the episode ends with probability 1 and v = 1 / (1 - 0.5) = 2.
-    # Breakage caught: leaking rows not counted as ends (the policy would be refused as
-    # never ending).
-    p = np.zeros((2, 1, 2))
+    # State 1 loops forever and is never started in: no value (NaN). Breakages caught:
+    # leaking rows not counted as ends (the policy would be refused as never ending), the
+    # leak measured over the whole table instead of per row (state 1 would count as an end).
+    p = np.zeros((3, 1, 3))
     p[0, 0, 0] = 0.5
-    model = make_model(p, [[1.0], [0.0]], [False, True], [1.0, 0.0])
-    np.testing.assert_allclose(policy_evaluation(model, np.ones((2, 1)), 1.0), [2.0, 0.0])
+    p[1, 0, 1] = 1.0
+    model = make_model(p, [[1.0], [1.0], [0.0]], [False, False, True], [1.0, 0.0, 0.0])
+    np.testing.assert_allclose(policy_evaluation(model, np.ones((3, 1)), 1.0), [2.0, np.nan, 0.0])
 
 
 @pytest.mark.parametrize(

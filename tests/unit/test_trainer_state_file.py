@@ -147,3 +147,10 @@ def test_a_failed_write_leaves_the_previous_file_and_no_partial_file(tmp_path, m
         state.save(path)
     assert path.read_bytes() == before
     assert sorted(os.listdir(tmp_path)) == ["state.npz"]
+
+
+def test_a_fresh_state_starts_from_zero_estimates_unless_told_otherwise():
+    # Breakage caught: a different default initial value (optimism the user did not ask for).
+    state = TrainerState.fresh(2, 3, seed=0)
+    assert not state.values.q.any() and state.values.q.shape == (2, 3)
+    assert state.episode == 0 and not state.values.visits.any()
