@@ -106,3 +106,22 @@ def test_four_jobs_opening_a_new_sqlite_store_at_once_all_succeed(tmp_path):
     assert [p.returncode for p in processes] == [0, 0, 0, 0], errors
     client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / 'fresh.db'}")
     assert len(client.search_runs([client.get_experiment_by_name("race").experiment_id])) == 4
+
+
+def test_an_optuna_search_records_every_trial_and_names_the_best(run_cli, tmp_path):
+    # Two trials of the GLIE search, each trained on two seeds: four children in two groups;
+    # the parent names the trial with the higher seed-averaged final eval_return_mean.
+    arguments = ["env=restock", "episodes=40", "eval_episodes=20", "eval_every=0", "rollout_animation=false", "tracking.log_model=false"]
+    result = run_cli("qtally-train", "-m", *arguments, "hydra/sweeper=tune_glie", "schedule=glie_visits", "repeat_seeds=[0,1]", "hydra.sweeper.n_trials=2")
+    assert result.returncode == 0, result.stderr[-3000:]
+    parents, children = _runs(tmp_path)
+    assert len(parents) == 1 and parents[0].info.status == "FINISHED"
+    assert len(children) == 4 and all(c.info.status == "FINISHED" for c in children)
+    by_group: dict[str, list[float]] = {}
+    for child in children:
+        by_group.setdefault(child.data.tags[GROUP_LABEL_TAG], []).append(child.data.metrics["eval_return_mean"])
+    assert len(by_group) == 2 and all(len(v) == 2 for v in by_group.values())
+    best_label, best_finals = max(by_group.items(), key=lambda item: sum(item[1]) / 2)
+    parent = parents[0]
+    assert parent.data.metrics["best_trial_eval_return_mean"] == pytest.approx(sum(best_finals) / 2)
+    assert sorted(parent.data.tags["qtally.best_trial"].split()) == sorted(best_label.split())
