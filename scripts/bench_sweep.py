@@ -45,9 +45,10 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="a smoke run with tiny jobs")
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--episodes", type=int, default=20000, help="restocking seasons per job (full mode)")
     options = parser.parse_args()
     seeds = "0,1" if options.quick else "0,1,2,3"
-    episodes = 50 if options.quick else 3000
+    episodes = 50 if options.quick else options.episodes
     jobs = 2 * len(seeds.split(","))
     common = ["env=restock", "schedule=constant,glie_visits", f"seed={seeds}", "rollout_animation=false", "eval_every=0", "quiet=true"]
     if options.quick:
