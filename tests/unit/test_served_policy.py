@@ -15,7 +15,7 @@ import pytest
 from qtally.envs.encoders import BinnedBoxEncoder, DiscreteEncoder, PartsEncoder
 from qtally.policy.artifact import PolicyArtifact
 from qtally.policy.table_policy import Fallback
-from qtally.tracking import qtally_served_policy as served
+from qtally.policy import qtally_served_policy as served
 
 ENCODERS = {
     "discrete": DiscreteEncoder(n=7, start=-2, names=("shelf",)),
@@ -135,9 +135,11 @@ def test_version_1_files_are_served_with_the_uniform_fallback(tmp_path):
 
 def test_the_served_code_imports_no_qtally():
     # Breakage caught: a qtally import sneaking into the code that ships with the model.
-    folder = Path(served.__file__).parent
-    for name in ("qtally_served_policy.py", "policy_model_code.py"):
-        tree = ast.parse((folder / name).read_text())
+    from qtally.tracking import policy_model
+
+    for path in (Path(served.__file__), policy_model.MODEL_CODE):
+        name = path.name
+        tree = ast.parse(path.read_text())
         imported = {alias.name.split(".")[0] for node in ast.walk(tree) if isinstance(node, ast.Import) for alias in node.names}
         imported |= {node.module.split(".")[0] for node in ast.walk(tree) if isinstance(node, ast.ImportFrom) and node.module and node.level == 0}
         assert imported <= {"__future__", "hashlib", "json", "os", "zipfile", "zlib", "numpy", "mlflow", "qtally_served_policy"}, (name, imported)

@@ -26,26 +26,22 @@ constructor arguments.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import tempfile
-import zipfile
-import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .qtally_served_policy import FORMAT_NAME, READABLE_VERSIONS, _checksum, read_policy_file
 from .table_policy import Fallback, TablePolicy, greedy_actions
 from ..envs.encoders import encoder_from_spec
 
 __all__ = ["PolicyArtifact", "PolicyFormatError", "load_policy", "FORMAT_NAME", "FORMAT_VERSION", "READABLE_VERSIONS", "Fallback"]
 
-FORMAT_NAME = "qtally-policy"
 FORMAT_VERSION = 2
-READABLE_VERSIONS = (1, 2)
 SIGNATURE_KEYS = ("env_id", "kwargs", "observation", "n_actions")
 
 
@@ -53,11 +49,6 @@ class PolicyFormatError(ValueError):
     """The file is not a valid qtally policy, or does not fit the environment."""
 
 
-def _checksum(*arrays: np.ndarray) -> str:
-    digest = hashlib.sha256()
-    for array in arrays:
-        digest.update(np.ascontiguousarray(array).tobytes())
-    return digest.hexdigest()
 
 
 def _describe_signature(signature: dict) -> str:
@@ -149,32 +140,10 @@ class PolicyArtifact:
 
 
 def load_policy(path: str | os.PathLike) -> PolicyArtifact:
-    """Load and verify a policy file (no pickle)."""
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            q, visits, actions = archive["q"], archive["visits"], archive["actions"]
-            visited = archive["visited"] if "visited" in archive.files else None
-            metadata = json.loads(str(archive["metadata"]))
-    except FileNotFoundError:
-        raise PolicyFormatError(f"policy file {os.fspath(path)!r} does not exist") from None
-    except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error, json.JSONDecodeError) as exc:
-        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file ({exc})") from None
-    if not isinstance(metadata, dict) or metadata.get("format") != FORMAT_NAME:
-        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file")
-    version = metadata.get("format_version")
-    if version not in READABLE_VERSIONS:
-        raise PolicyFormatError(f"{os.fspath(path)!r} has policy format version {version}, this qtally reads versions {', '.join(map(str, READABLE_VERSIONS))}")
-    if version == 1:
-        checked = (q, visits, actions)
-        visited = np.asarray(visits).sum(axis=1) > 0
-    elif visited is None or visited.dtype != np.bool_:
-        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file (no boolean 'visited' array)")
-    else:
-        checked = (q, visits, actions, visited)
-    if metadata.get("checksum") != _checksum(*checked):
-        raise PolicyFormatError(f"{os.fspath(path)!r} failed its checksum: the file is damaged or was edited")
-    if q.ndim != 2 or visits.shape != q.shape or actions.shape != q.shape[:1] or visited.shape != q.shape[:1]:
-        raise PolicyFormatError(f"{os.fspath(path)!r} is not a qtally policy file (array shapes do not agree)")
+    """Load and verify a policy file (no pickle), through the one reader the served model uses too."""
+    arrays, metadata = read_policy_file(path, PolicyFormatError)
+    q, visits, actions, visited = arrays["q"], arrays["visits"], arrays["actions"], arrays["visited"]
+    version = metadata["format_version"]
     try:
         fallback = Fallback.from_dict(metadata.get("fallback")) if version >= 2 else Fallback()
         fallback.check_actions(int(q.shape[1]))

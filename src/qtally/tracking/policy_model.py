@@ -7,7 +7,7 @@ the raw vector for ``Box``; a numpy array, a list of lists and a DataFrame (colu
 name) all work. States training never reached get the policy's declared fallback.
 
 The model is logged as code (MLflow's models-from-code): loading it runs
-``policy_model_code.py``, which uses :mod:`qtally.tracking.qtally_served_policy`, a
+``policy_model_code.py``, which uses :mod:`qtally.policy.qtally_served_policy`, a
 numpy-only reader and encoder shipped with the model through ``code_paths``. Neither
 imports qtally, and the requirements list only numpy and MLflow, so
 ``mlflow models serve`` works where qtally is not installed. The policy file is read
@@ -30,12 +30,12 @@ from mlflow.models.signature import ModelSignature
 from mlflow.types.schema import Schema, TensorSpec
 
 from ..policy.artifact import PolicyArtifact
-from . import qtally_served_policy
+from ..policy import qtally_served_policy
 
 __all__ = ["log_policy_model", "input_layout", "served_requirements"]
 
 _HERE = Path(__file__).parent
-SERVED_MODULE = _HERE / "qtally_served_policy.py"
+SERVED_MODULE = Path(qtally_served_policy.__file__)
 MODEL_CODE = _HERE / "policy_model_code.py"
 
 

@@ -38,7 +38,7 @@ import zlib
 
 import numpy as np
 
-__all__ = ["ServedPolicyError", "ServedPolicy", "load_served_policy", "encode_rows"]
+__all__ = ["ServedPolicyError", "ServedPolicy", "read_policy_file", "load_served_policy", "encode_rows"]
 
 FORMAT_NAME = "qtally-policy"
 READABLE_VERSIONS = (1, 2)
@@ -158,8 +158,15 @@ class ServedPolicy:
         return actions
 
 
-def load_served_policy(path: str | os.PathLike) -> ServedPolicy:
-    """Open a qtally policy file without pickle and check its format, version and checksum."""
+def read_policy_file(path: str | os.PathLike, error: type[Exception] = None) -> tuple[dict, dict]:
+    """Open a qtally policy file without pickle; check format, version, checksum and array shapes.
+
+    The one reader of the format: qtally's :func:`qtally.policy.artifact.load_policy` and the
+    served model both call it. Returns the arrays (``q``, ``visits``, ``actions``,
+    ``visited``; version 1 files get ``visited`` from the visit counts) and the metadata;
+    raises ``error`` (default :class:`ServedPolicyError`) with a one-line message.
+    """
+    error = error or ServedPolicyError
     where = os.fspath(path)
     try:
         with np.load(path, allow_pickle=False) as archive:
@@ -167,24 +174,35 @@ def load_served_policy(path: str | os.PathLike) -> ServedPolicy:
             visited = archive["visited"] if "visited" in archive.files else None
             metadata = json.loads(str(archive["metadata"]))
     except FileNotFoundError:
-        raise ServedPolicyError(f"policy file {where!r} does not exist") from None
+        raise error(f"policy file {where!r} does not exist") from None
     except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error, json.JSONDecodeError) as exc:
-        raise ServedPolicyError(f"{where!r} is not a qtally policy file ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})") from None
+        raise error(f"{where!r} is not a qtally policy file ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})") from None
     if not isinstance(metadata, dict) or metadata.get("format") != FORMAT_NAME:
-        raise ServedPolicyError(f"{where!r} is not a qtally policy file")
+        raise error(f"{where!r} is not a qtally policy file")
     version = metadata.get("format_version")
     if version not in READABLE_VERSIONS:
-        raise ServedPolicyError(f"{where!r} has policy format version {version}; this model reads versions {', '.join(map(str, READABLE_VERSIONS))}")
+        raise error(f"{where!r} has policy format version {version}; this reader reads versions {', '.join(map(str, READABLE_VERSIONS))}")
     q, visits, actions = arrays["q"], arrays["visits"], arrays["actions"]
     if version == 1:
         checked = (q, visits, actions)
         visited = np.asarray(visits).sum(axis=1) > 0
     elif visited is None or visited.dtype != np.bool_:
-        raise ServedPolicyError(f"{where!r} is not a qtally policy file (no boolean 'visited' array)")
+        raise error(f"{where!r} is not a qtally policy file (no boolean 'visited' array)")
     else:
         checked = (q, visits, actions, visited)
     if metadata.get("checksum") != _checksum(*checked):
-        raise ServedPolicyError(f"{where!r} failed its checksum: the file is damaged or was edited")
+        raise error(f"{where!r} failed its checksum: the file is damaged or was edited")
+    if q.ndim != 2 or visits.shape != q.shape or actions.shape != q.shape[:1] or visited.shape != q.shape[:1]:
+        raise error(f"{where!r} is not a qtally policy file (array shapes do not agree)")
+    arrays["visited"] = visited
+    return arrays, metadata
+
+
+def load_served_policy(path: str | os.PathLike) -> ServedPolicy:
+    """Open a qtally policy file for serving: the verified arrays, the encoding, the fallback."""
+    where = os.fspath(path)
+    arrays, metadata = read_policy_file(path)
+    q, actions, visited = arrays["q"], arrays["actions"], arrays["visited"]
     signature = metadata.get("signature") or {}
     observation = signature.get("observation")
     if not isinstance(observation, dict) or q.ndim != 2 or actions.shape != q.shape[:1] or visited.shape != q.shape[:1]:
