@@ -78,6 +78,7 @@ class PredictionPlan:
     exact_v: np.ndarray | None
     exact_q: np.ndarray | None
     exact_reason: str | None
+    exact_start_value: float | None = None  # the exact value where the episodes start (None: not one state or distribution)
 
 
 @dataclass
@@ -120,6 +121,21 @@ def _exact_values(model: TabularModel, target: np.ndarray, gamma: float):
     except ImproperPolicyError as exc:
         return None, None, first_line(exc)
     return v, q_from_v(model, v, gamma), None
+
+
+def _exact_start_value(environment: TabularEnvironment, model: TabularModel | None, exact_v: np.ndarray | None, start) -> float | None:
+    """The exact value of the policy where every episode starts: the model's start distribution, or the chosen state.
+
+    None where the episodes start from a drawn state or with a forced first action (then
+    the first return measures something else than V at one start).
+    """
+    from .evaluate.exact import start_value
+
+    if exact_v is None or model is None or start.action is not None or start.states is not None:
+        return None
+    if start.observation is None:
+        return start_value(model, exact_v)
+    return float(exact_v[environment.encoder.encode(start.observation)])
 
 
 def _check_covered(environment: TabularEnvironment, target: PolicyTable, behaviour: PolicyTable, model: TabularModel | None) -> None:
@@ -172,6 +188,7 @@ def prepare_prediction(cfg: DictConfig) -> PredictionPlan:
             exact_v, exact_q, reason = None, None, no_model
         else:
             exact_v, exact_q, reason = _exact_values(model, target.probs, cfg.gamma)
+        exact_start = _exact_start_value(environment, model, exact_v, start)
     except ConfigError as exc:
         environment.close()
         raise QtallyError(str(exc)) from None
@@ -198,6 +215,7 @@ def prepare_prediction(cfg: DictConfig) -> PredictionPlan:
         tracking_uri=uri,
         exact_v=exact_v,
         exact_q=exact_q,
+        exact_start_value=exact_start,
         exact_reason=reason,
     )
 
@@ -281,6 +299,8 @@ def run_prediction(cfg: DictConfig, progress_factory: Callable[[int], Any] | Non
                 "return_mean": played.return_mean,
                 "truncated_fraction": played.truncated / max(played.episodes, 1),
                 "step_capped_fraction": played.capped / max(played.episodes, 1),
+                **({"start_value_estimate": played.start_value_mean, "start_value_ci95": played.start_value_ci95} if plan.behaviour is None and plan.start_action is None else {}),
+                **({"start_value_exact": plan.exact_start_value} if plan.exact_start_value is not None else {}),
                 "steps": float(played.steps),
             })
             mlflow.log_metrics({k: v for k, v in metrics.items() if math.isfinite(v)})  # the report never makes inf; NaN means no value

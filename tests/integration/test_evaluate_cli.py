@@ -52,8 +52,10 @@ def test_a_rule_policy_on_frozen_lake_is_estimated_and_recorded(store):
     assert good.returncode == 0, good.stderr[-2000:]
     lines = good.stdout.strip().splitlines()
     assert lines[0].startswith("prediction of [uniform] on FrozenLake-v1: 400 episodes, first-visit, on-policy")
-    assert "exact" in lines[1] and "err/se" in lines[1]
-    table = [line for line in lines[2:] if line.startswith("  v ") or line.startswith("  q ")]
+    # The answer comes first: the value from the start distribution, its interval, the exact value.
+    assert lines[1].startswith("value of the policy from the start distribution: ") and "(95%, 400 episodes); exact " in lines[1]
+    assert "exact" in lines[2] and "err/se" in lines[2]
+    table = [line for line in lines[3:] if line.startswith("  v ") or line.startswith("  q ")]
     assert 1 <= len(table) <= 20
     assert any("summary: states_estimated=" in line and "max_error_in_se=" in line for line in lines)
     run_id = lines[-1].split()[1]
@@ -68,6 +70,7 @@ def test_a_rule_policy_on_frozen_lake_is_estimated_and_recorded(store):
     for name in ("max_abs_error", "mean_abs_error", "max_error_in_se", "states_estimated"):
         assert name in metrics
     assert metrics["episodes"] == 400
+    assert abs(metrics["start_value_estimate"] - metrics["start_value_exact"]) < 4 * metrics["start_value_ci95"]
     assert 0 <= metrics["mean_abs_error"] <= metrics["max_abs_error"] < 1
     assert run.data.params["policy.rule"] == "uniform" and run.data.params["gamma"] == "0.9"
 

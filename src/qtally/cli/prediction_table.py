@@ -16,6 +16,21 @@ if TYPE_CHECKING:
 __all__ = ["format_report"]
 
 
+def _headline(summary) -> str:
+    """The answer first: the policy's value where its episodes start, with its interval and, where known, the exact value."""
+    plan, played = summary.plan, summary.played
+    where = "from the start distribution" if plan.start_observation is None and plan.start_states is None else "from the chosen start"
+    if plan.behaviour is None and plan.start_action is None and plan.start_states is None:
+        line = f"value of the policy {where}: {played.start_value_mean:.4g} ± {played.start_value_ci95:.3g} (95%, {played.episodes} episodes)"
+        if plan.exact_start_value is not None:
+            inside = abs(played.start_value_mean - plan.exact_start_value) <= played.start_value_ci95
+            line += f"; exact {plan.exact_start_value:.4g} ({'inside' if inside else 'outside'} the interval)"
+        return line
+    if plan.exact_start_value is not None:
+        return f"value of the policy {where}: exact {plan.exact_start_value:.4g} (the sampled episodes start elsewhere or follow another policy; estimates per state below)"
+    return "value of the policy: see the per-state estimates below (the episodes start from drawn states, a forced action or another policy)"
+
+
 def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
     """The table printed on standard output, then the summary line."""
     plan = summary.plan
@@ -29,6 +44,7 @@ def format_report(summary: PredictionSummary, limit: int = TABLE_ROWS) -> str:
         f"prediction of [{plan.target.label}] on {plan.environment.spec.id}: {summary.episodes} episodes, "
         f"{'first' if summary.first_visit else 'every'}-visit, {playing}"
     ]
+    lines.append(_headline(summary))
     width = max([len(r.observation) for r in shown] + [11])
     show_effective = off_policy or not summary.first_visit  # elsewhere it equals the visit count
     header = f"  {'kind':<4} {'method':<9} {'observation':<{width}} {'action':>6} {'estimate':>10} {'± se':>9} {'visits':>8}"

@@ -18,6 +18,7 @@ from ..control.streams import RandomStreams
 from ..control.truncation import check_truncation, resolve_step_cap, tail_value
 from ..engine.episodes import GymEpisodes
 from ..policy.table_policy import sample_action
+from .rollouts import summarise_returns
 
 __all__ = ["Estimator", "PlayedSummary", "play_prediction_episodes", "table_chooser"]
 
@@ -43,6 +44,8 @@ class PlayedSummary:
     discarded: int
     steps: int
     capped: int = 0
+    start_value_mean: float = float("nan")  # mean discounted return from the first step: V(start) when played on-policy
+    start_value_ci95: float = float("nan")  # half-width of its Student-t 95% interval
 
 
 def table_chooser(policy: np.ndarray, next_uniform) -> Any:
@@ -93,6 +96,8 @@ def play_prediction_episodes(
     choose = table_chooser(policy, streams.acting.next)
     starts = list(start_states) if start_states is not None else None
     total_returns = np.zeros(episodes)
+    start_returns = np.zeros(episodes)
+    gamma = float(getattr(estimator, "gamma", 1.0))
     truncated = discarded = steps = capped = 0
     for episode in range(episodes):
         observation, first_action = start_observation, start_action
@@ -103,6 +108,7 @@ def play_prediction_episodes(
         played = source.play(choose, start_observation=observation, first_action=first_action)
         arrays = played.arrays
         total_returns[episode] = played.total_reward
+        start_returns[episode] = float(np.dot(gamma ** np.arange(arrays.length), arrays.rewards)) if gamma < 1.0 else played.total_reward
         steps += arrays.length
         truncated += int(played.truncated)
         capped += int(played.capped)
@@ -116,6 +122,7 @@ def play_prediction_episodes(
             progress.update(episode + 1, {"return_mean": float(recent.mean())})
     n = max(episodes, 1)
     se = float(total_returns.std(ddof=1) / np.sqrt(n)) if episodes >= 2 else float("nan")
+    start = summarise_returns(start_returns)
     return PlayedSummary(
         episodes=episodes,
         return_mean=float(total_returns.mean()) if episodes else float("nan"),
@@ -124,4 +131,6 @@ def play_prediction_episodes(
         discarded=discarded,
         steps=steps,
         capped=capped,
+        start_value_mean=start.mean,
+        start_value_ci95=start.ci95,
     )
