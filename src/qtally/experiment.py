@@ -175,9 +175,9 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     """Inside the open run: train with the batching recorder, then write the artifacts and the model."""
     import mlflow
 
-    from .envs.pictures import policy_pictures
+    from .envs.pictures import policy_pictures, state_values
     from .envs.rollout_animation import rollout_animation
-    from .plots import learning_curve
+    from .plots import learning_curve, shared_value_range
     from .tracking.mlflow_sink import MlflowRecorder
     from .tracking.policy_model import log_policy_model
 
@@ -218,12 +218,17 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         policy_path = outcome.artifact.save(scratch_dir / "policy.npz")
         mlflow.log_artifact(str(policy_path), "policy_file")
         mlflow.log_artifact(str(_write_q_table_csv(environment, outcome, scratch_dir / "q_table.csv")), "tables")
-        title = f"{cfg.env.id} · {cfg.variant.name} · {cfg.schedule.kind} · seed {cfg.seed}"
+        # Exploring starts act greedily after a random start pair: no schedule to name.
+        acting = "greedy after a random start pair" if cfg.variant.name == "exploring_starts" else f"schedule {cfg.schedule.kind}"
+        title = f"{cfg.env.id} · {cfg.variant.name} · {acting} · seed {cfg.seed}"
         mlflow.log_artifact(str(learning_curve(outcome.history, scratch_dir / "learning_curve.png", title)), "plots")
-        pictures = policy_pictures(environment, outcome.values.q, outcome.artifact.actions, scratch_dir / "maps", "learned", visits=outcome.values.visits)
+        # The learned and the optimal map share one colour scale, so equal colours mean equal values.
+        learned_values = state_values(outcome.values.q, outcome.values.visits)
+        value_range = shared_value_range(learned_values, exact[1].v_star) if exact else None
+        pictures = policy_pictures(environment, outcome.values.q, outcome.artifact.actions, scratch_dir / "maps", "learned", visits=outcome.values.visits, value_range=value_range)
         if exact:
             model, solution = exact
-            pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star)
+            pictures += policy_pictures(environment, solution.q_star, solution.policy, scratch_dir / "maps", "optimal", values=solution.v_star, value_range=value_range)
         for picture in pictures:
             mlflow.log_artifact(str(picture), "plots")
         if cfg.rollout_animation:

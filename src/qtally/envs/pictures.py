@@ -14,7 +14,7 @@ import numpy as np
 from ..plots import UNVISITED_MARK, grid_maps, two_factor_maps
 from .factory import TabularEnvironment
 
-__all__ = ["policy_pictures"]
+__all__ = ["policy_pictures", "state_values"]
 
 
 def _state_values(q: np.ndarray, visits: np.ndarray | None) -> np.ndarray:
@@ -24,8 +24,16 @@ def _state_values(q: np.ndarray, visits: np.ndarray | None) -> np.ndarray:
     return values
 
 
-def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.ndarray, directory: Path, label: str, visits: np.ndarray | None = None, values: np.ndarray | None = None) -> list[Path]:
-    """Draw what fits this environment; ``values`` defaults to the greedy value max_a Q."""
+def state_values(q: np.ndarray, visits: np.ndarray | None = None) -> np.ndarray:
+    """The greedy value max_a Q of each state, NaN where training never reached it (what the maps colour)."""
+    return _state_values(q, visits)
+
+
+def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.ndarray, directory: Path, label: str, visits: np.ndarray | None = None, values: np.ndarray | None = None, value_range: tuple[float, float] | None = None) -> list[Path]:
+    """Draw what fits this environment; ``values`` defaults to the greedy value max_a Q.
+
+    Pass the same ``value_range`` to a learned and an optimal picture so their colours mean the same values.
+    """
     directory.mkdir(parents=True, exist_ok=True)
     core = environment.env.unwrapped
     name = type(core).__name__
@@ -37,12 +45,12 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
     if name == "FrozenLakeEnv":
         desc = np.asarray(core.desc).astype(str)
         blocked = np.isin(desc.ravel(), ("H", "G"))
-        return [grid_maps(v, actions, desc.shape, "←↓→↑", path, f"{label}: value and greedy action (· hole or goal){note}", blocked, unvisited)]
+        return [grid_maps(v, actions, desc.shape, "←↓→↑", path, f"{label}: value and greedy action\n(· hole or goal){note}", blocked, unvisited, value_range)]
     if name == "CliffWalkingEnv":
         shape = tuple(core.shape)
         blocked = core._cliff.ravel().copy()
         blocked[-1] = True
-        return [grid_maps(v, actions, shape, "↑→↓←", path, f"{label}: value and greedy action (· cliff or goal){note}", blocked, unvisited)]
+        return [grid_maps(v, actions, shape, "↑→↓←", path, f"{label}: value and greedy action\n(· cliff or goal){note}", blocked, unvisited, value_range)]
     if name == "BlackjackEnv":
         encoder = environment.encoder
         sums, dealers = list(range(12, 22)), list(range(1, 11))
@@ -55,7 +63,7 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
                     index = encoder.encode((s, d, k))
                     grid_v[k, r, c], grid_a[k, r, c] = v[index], actions[index]
                     grid_u[k, r, c] = unvisited is not None and unvisited[index]
-        return [two_factor_maps(grid_v, grid_a, sums, ["A"] + dealers[1:], "player sum", "dealer showing", "SH", ["no usable ace", "usable ace"], path, f"{label}: value and greedy action (S stick, H hit){note}", grid_u)]
+        return [two_factor_maps(grid_v, grid_a, sums, ["A"] + dealers[1:], "player sum", "dealer showing", "SH", ["no usable ace", "usable ace"], path, f"{label}: value and greedy action (S stick, H hit)\nplayer sums 12-21 shown; sums 4-11 (no usable ace) are in tables/q_table.csv{note}", grid_u, value_range)]
     if name == "RestockEnv":
         encoder = environment.encoder
         sizes = encoder.sizes
@@ -76,5 +84,9 @@ def policy_pictures(environment: TabularEnvironment, q: np.ndarray, actions: np.
                     grid_u[k, r, c] = unvisited is not None and unvisited[index]
         letters = [str(n) for n in range(environment.n_actions)]
         titles = [f"{encoder.names[2]}={older}" for older in panels] if len(sizes) >= 3 else [""]
-        return [two_factor_maps(grid_v, grid_a, days, stock, "day", encoder.names[1], letters, titles, path, f"{label}: value and order quantity{note}", grid_u)]
+        shown = ""
+        if len(sizes) >= 3:
+            older_units = ", ".join(encoder.names[3:])
+            shown = f"\nslices {encoder.names[2]} = {panels[0]} and {panels[-1]} of 0..{sizes[2] - 1} shown" + (f" ({older_units} = 0)" if older_units else "") + "; the others are in tables/q_table.csv"
+        return [two_factor_maps(grid_v, grid_a, days, stock, "day", encoder.names[1], letters, titles, path, f"{label}: value and order quantity{shown}{note}", grid_u, value_range)]
     return []
