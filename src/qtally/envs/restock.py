@@ -428,53 +428,41 @@ def _bar(img: np.ndarray, x: int, base: int, units: int, unit_px: int, width: in
 
 
 def _draw_frame(env: RestockEnv) -> np.ndarray:
-    """The shelf by age, the order, demand, sales, lost sales and spoilage, and a season strip."""
-    scale_units = max(env.max_order, env.stock_cap, env.max_demand, 1)
-    unit_px = max(4, 120 // scale_units)
-    n_bars = env.shelf_life + 5
-    bar_w, gap = 18, 8
-    width = max(40 + n_bars * (bar_w + gap), 14 * min(env.horizon, 28) + 20, 200)
-    height = 60 + scale_units * unit_px + 20
-    img = np.empty((height, width, 3), dtype=np.uint8)
-    img[:] = _BACKGROUND
+    """One labelled frame, 640 x 400 pixels: the day, the shelf by age, the order, demand, sales, losses, spoilage and the money so far."""
+    import matplotlib
 
-    # Season strip: one cell a day, weekends darker, past days filled, today outlined.
-    cell = max(3, min(12, (width - 20) // max(env.horizon, 1)))
-    today = env._last["day"] if env._last is not None else min(env._day, env.horizon - 1)
-    for day in range(env.horizon):
-        x0 = 10 + day * cell
-        if x0 + cell > width - 2:
-            break
-        weekend = day % 7 in (5, 6)
-        colour = (150, 150, 170) if day < today else ((215, 210, 225) if weekend else (230, 228, 220))
-        img[8 : 8 + cell, x0 : x0 + cell - 1] = colour
-        if day == today:
-            img[6 : 10 + cell, x0 - 1 : x0 + cell] = (30, 30, 30)
-            img[8 : 8 + cell, x0 : x0 + cell - 1] = (250, 210, 80)
-    _text(img, 10, 14 + cell, f"{today + 1}/{env.horizon}")
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
 
-    base = height - 12
-    img[base, 10 : width - 10] = (60, 60, 60)
-    if env._last is not None:
-        shelf = env._last["shelf"]
-        counts = [env._last[k] for k in ("ordered", "demand", "sold", "lost", "spoiled")]
-        colours = [_ORDER, _DEMAND, _SOLD, _LOST, _SPOILED]
-    else:
-        shelf = np.concatenate([[0], env._stock])
-        counts, colours = [0, 0, 0, 0, 0], [_ORDER, _DEMAND, _SOLD, _LOST, _SPOILED]
-    x = 20
-    for age, units in enumerate(shelf):
-        mix = age / max(env.shelf_life - 1, 1)
-        colour = tuple(int(v) for v in (1 - mix) * _AGE_FRESH + mix * _AGE_OLD)
-        _bar(img, x, base, units, unit_px, bar_w, colour)
-        _text(img, x + 2, base - int(units) * unit_px - 14, str(int(units)))
-        x += bar_w + gap
-    x += gap
-    for units, colour in zip(counts, colours):
-        _bar(img, x, base, units, unit_px, bar_w, colour, outline=colour is _DEMAND)
-        _text(img, x + 2, base - int(units) * unit_px - 14, str(int(units)), colour=colour)
-        x += bar_w + gap
-    return img
+    weekdays = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
+    fig, ax = plt.subplots(figsize=(6.4, 4.0), dpi=100)
+    try:
+        if env._last is not None:
+            day = int(env._last["day"])
+            shelf = [int(x) for x in env._last["shelf"]]
+            counts = [int(env._last[k]) for k in ("ordered", "demand", "sold", "lost", "spoiled")]
+            heading = f"day {day + 1} of {env.horizon} ({weekdays[day % 7]}): ordered {counts[0]}, demand {counts[1]}"
+        else:
+            day = min(env._day, env.horizon - 1)
+            shelf = [0] + [int(x) for x in env._stock]
+            counts = [0, 0, 0, 0, 0]
+            heading = f"day {day + 1} of {env.horizon} ({weekdays[day % 7]}): the morning, before the first order"
+        labels = [f"age {age}" for age in range(len(shelf))] + ["ordered", "demand", "sold", "lost", "spoiled"]
+        values = shelf + counts
+        colours = ["#46aa50"] * len(shelf) + ["#3c6ec8", "#a0a0a0", "#288c3c", "#c83232", "#785028"]
+        bars = ax.bar(range(len(values)), values, color=colours)
+        ax.bar_label(bars, [str(v) for v in values], fontsize=9)
+        ax.set_xticks(range(len(values)), labels, fontsize=9)
+        ax.axvline(len(shelf) - 0.5, color="#666666", lw=0.8, ls=":")
+        ax.set_ylim(0, max(env.max_order, env.stock_cap, env.max_demand, 1) + 1)
+        ax.set_ylabel("units")
+        ax.set_title(f"{heading}\nshelf on sale today (age 0 = today's delivery) | the day's flows    profit so far: {env._episode_return:.2f}", fontsize=9)
+        fig.tight_layout()
+        fig.canvas.draw()
+        frame = np.asarray(fig.canvas.buffer_rgba())[:, :, :3].copy()
+    finally:
+        plt.close(fig)
+    return frame
 
 
 # ---------------------------------------------------------------------- registration and presets
