@@ -8,10 +8,10 @@ from __future__ import annotations
 import gymnasium as gym
 import numpy as np
 import pytest
-import scipy.sparse as sp
 
 from qtally.envs.model import NoModelError, TabularModel
 from qtally.envs.model_extraction import model_from_p_table, model_of
+from support.dense_models import make_model
 from qtally.evaluate.exact import (
     ImproperPolicyError,
     NotConvergedError,
@@ -32,17 +32,6 @@ from qtally.evaluate.exact import (
 
 RIGHT, STAY = 0, 1
 
-
-def make_model(p, rewards, terminal, start) -> TabularModel:
-    """A TabularModel from a dense (S, A, S) transition array."""
-    p = np.asarray(p, dtype=float)
-    S, A, _ = p.shape
-    return TabularModel(
-        transitions=sp.csr_array(p.reshape(S * A, S)),
-        rewards=np.asarray(rewards, dtype=float),
-        terminal=np.asarray(terminal, dtype=bool),
-        start_distribution=np.asarray(start, dtype=float),
-    )
 
 
 @pytest.fixture

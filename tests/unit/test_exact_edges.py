@@ -10,9 +10,9 @@ import math
 
 import numpy as np
 import pytest
-import scipy.sparse as sp
 
 from qtally.envs.model import TabularModel
+from support.dense_models import make_model
 from qtally.evaluate.exact import (
     NotConvergedError,
     epsilon_soft_probs,
@@ -28,16 +28,6 @@ from qtally.evaluate.exact import (
 
 BACK, FORWARD = 0, 1
 
-
-def make_model(p, rewards, terminal, start) -> TabularModel:
-    p = np.asarray(p, dtype=float)
-    S, A, _ = p.shape
-    return TabularModel(
-        transitions=sp.csr_array(p.reshape(S * A, S)),
-        rewards=np.asarray(rewards, dtype=float),
-        terminal=np.asarray(terminal, dtype=bool),
-        start_distribution=np.asarray(start, dtype=float),
-    )
 
 
 def walk(rewards=None) -> TabularModel:
