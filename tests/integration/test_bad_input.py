@@ -14,7 +14,7 @@ CASES = [
     (["env.id=no_such_module:Thing"], ["env.id", "cannot import module"]),
     (["env=cartpole_binned", "env.id=MountainCarContinuous-v0"], ["Box action space", "Discrete actions"]),
     (["env=cartpole_binned", "env.bins=null"], ["Box observations need binning", "env.bins"]),
-    (["schedule.epsilon=1.5"], ["schedule.epsilon=1.5", "[0, 1]"]),
+    (["schedule=constant", "schedule.epsilon=1.5"], ["schedule.epsilon=1.5", "[0, 1]"]),
     (["schedule=linear", "schedule.end=-0.1"], ["schedule.end=-0.1", "[0, 1]"]),
     (["gamma=1.2"], ["gamma=1.2", "[0, 1]"]),
     (["episodes=0"], ["episodes=0", "positive"]),

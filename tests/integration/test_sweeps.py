@@ -85,7 +85,7 @@ def test_a_job_that_breaks_is_recorded_failed_and_the_sweep_goes_on(run_cli, tmp
 
 
 def test_a_bad_combination_stops_the_sweep_before_anything_starts(run_cli, tmp_path):
-    result = run_cli("qtally-train", "-m", *SMALL, "schedule.epsilon=0.1,1.5", "seed=0,1")
+    result = run_cli("qtally-train", "-m", *SMALL, "schedule=constant", "schedule.epsilon=0.1,1.5", "seed=0,1")
     assert result.returncode == 2
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and "schedule.epsilon=1.5" in lines[0] and "nothing was started" in lines[0], result.stderr

@@ -34,9 +34,9 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     assert run.info.status == "FINISHED"
     # Params: the flattened resolved config.
     assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
-    assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.epsilon"] == "0.1"
+    assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.kind"] == "glie_episode"
     # Tags.
-    assert {k: run.data.tags[k] for k in ("env", "variant", "schedule", "seed")} == {"env": "FrozenLake-v1", "variant": "on_policy", "schedule": "constant", "seed": "5"}
+    assert {k: run.data.tags[k] for k in ("env", "variant", "schedule", "seed")} == {"env": "FrozenLake-v1", "variant": "on_policy", "schedule": "glie_episode", "seed": "5"}
     # Metrics, with the episode number as step.
     steps = [m.step for m in client.get_metric_history(run_id, "return_mean")]
     assert steps == list(range(50, 601, 50))
