@@ -65,7 +65,7 @@ def test_fifo_sells_oldest_first():
     for _ in range(60):
         env.reset_to((2, 2, 3))
         _, _, _, _, info = env.step(4)
-        assert env._last["shelf"].tolist() == [4, 2, 3]
+        assert list(env._last["shelf"]) == [4, 2, 3]
         # The age-2 units go first, then age 1, then the fresh ones.
         sold = info["sold"]
         left = [4 - max(sold - 5, 0), 2 - min(max(sold - 3, 0), 2), 3 - min(sold, 3)]

@@ -24,8 +24,9 @@ import numpy as np
 import scipy.sparse as sp
 
 from qtally.envs.model import ModelSource, NoModelError, TabularModel
+from qtally.envs.outcomes import OutcomeTable
 
-__all__ = ["model_from_p_table", "model_of"]
+__all__ = ["model_from_p_table", "model_of", "outcomes_of"]
 
 _ROW_SUM_ATOL = 1e-9
 
@@ -129,6 +130,31 @@ def _env_name(env: Any) -> str:
     return spec.id if spec is not None else type(env).__name__
 
 
+def outcomes_of(env: Any) -> OutcomeTable:
+    """The outcome table of ``env`` in its own sampling order (:mod:`qtally.envs.outcomes`).
+
+    From an ``outcome_table()`` method, a toy-text ``P`` table, or qtally's Blackjack model.
+    Raises :class:`~qtally.envs.model.NoModelError` when there is none: such an environment
+    can only be played through its ``step``.
+    """
+    base = getattr(env, "unwrapped", env)
+    if callable(getattr(base, "outcome_table", None)):
+        return base.outcome_table()
+    if type(base).__name__ == "BlackjackEnv":
+        from .blackjack_model import blackjack_outcome_table
+
+        return blackjack_outcome_table(sab=bool(base.sab), natural=bool(base.natural))
+    P = getattr(base, "P", None)
+    if P is not None and hasattr(base.observation_space, "n") and hasattr(base.action_space, "n"):
+        n_states, n_actions = int(base.observation_space.n), int(base.action_space.n)
+        first_state = int(getattr(base.observation_space, "start", 0))
+        if int(getattr(base.action_space, "start", 0)) != 0:
+            raise NoModelError(f"{_env_name(env)}: actions that do not start at 0 have no outcome table")
+        start = _toy_text_start(base, n_states, first_state)
+        return OutcomeTable.from_p_table(P, n_states, n_actions, np.arange(n_states), start, first_state=first_state)
+    raise NoModelError(f"{_env_name(env)} lists no outcomes (no outcome_table() method, no P table)")
+
+
 def model_of(env: Any) -> TabularModel:
     """The tabular model of ``env`` (wrappers are looked through to the unwrapped env).
 
@@ -137,6 +163,8 @@ def model_of(env: Any) -> TabularModel:
     base = getattr(env, "unwrapped", env)
     if isinstance(base, ModelSource):
         return base.tabular_model()
+    if type(base).__name__ == "BlackjackEnv":
+        return outcomes_of(base).to_model()
     P = getattr(base, "P", None)
     if P is not None:
         obs_space, act_space = base.observation_space, base.action_space

@@ -34,6 +34,9 @@ Demand
     ``min(X, max_demand)`` with ``X ~ Poisson(weekly_demand_means[t % 7])``: a Poisson
     count censored at ``max_demand``, so ``P(D = max_demand) = P(X >= max_demand)``. This
     keeps the model finite while the sampler stays exactly the one the model describes.
+    The sampler follows qtally's draw protocol (:mod:`qtally.envs.outcomes`): one uniform
+    per reset and one per day, the demand picked by inverse transform over ``0..max_demand``
+    in that order, so :meth:`RestockEnv.outcome_table` replays it draw for draw.
 Stock cap
     ``stock_cap`` bounds the stock of every age carried overnight. Units of an age above
     the cap are discarded overnight (counted in ``info["discarded"]`` and charged
@@ -64,15 +67,17 @@ no real shop. With the defaults the model has 15 * 6 * 6 = 540 states and 6 acti
 
 from __future__ import annotations
 
+from bisect import bisect_right
+from itertools import accumulate
 from typing import Any, Sequence
 
 import gymnasium as gym
 import numpy as np
-import scipy.sparse as sp
 from gymnasium import spaces
 from scipy import stats
 
 from .model import NoModelError, TabularModel
+from .outcomes import OutcomeTable
 
 __all__ = [
     "RestockEnv",
@@ -182,8 +187,14 @@ class RestockEnv(gym.Env):
         self.observation_names = ("day",) + tuple(f"stock_age{a}" for a in range(1, self.shelf_life))
         self.action_names = tuple(f"order_{q}" for q in range(self.max_order + 1))
 
+        # Running sums of each weekday's demand probabilities, added in order as the
+        # protocol's pick adds them (itertools.accumulate adds left to right).
+        self._demand_pmfs = tuple(demand_pmf(m, self.max_demand) for m in self.weekly_demand_means)
+        self._demand_cumulative = tuple(list(accumulate(p.tolist())) for p in self._demand_pmfs)
+
         self._day = 0
         self._stock = np.zeros(self.n_carried_ages, dtype=np.int64)
+        self._stock_list: list[int] = [0] * self.n_carried_ages
         self._last: dict[str, Any] | None = None
         self._episode_return = 0.0
 
@@ -240,18 +251,64 @@ class RestockEnv(gym.Env):
             "next_stock": next_stock,
         }
 
+    def _serve_day(self, order: int, demand: int, last_day: bool) -> tuple[float, list[int], dict]:
+        """One day for one shop, in plain Python: the same arithmetic as :meth:`_serve_days`.
+
+        The batch form defines the model; this form is the one ``step`` runs (a batch of
+        one costs several times more). A test checks the two agree on every state.
+        """
+        shelf = [order] + self._stock_list  # ages 0..L-1
+        left = list(shelf)
+        unmet = demand
+        for age in range(self.shelf_life - 1, -1, -1):  # oldest first
+            take = min(left[age], unmet)
+            left[age] -= take
+            unmet -= take
+        sold = demand - unmet
+        leftover = sum(left)
+        if last_day:
+            spoiled = discarded = kept = 0
+            next_stock = [0] * self.n_carried_ages
+            salvaged = leftover
+        else:
+            aged = left[: self.n_carried_ages]
+            next_stock = [min(units, self.stock_cap) for units in aged]
+            spoiled = left[self.shelf_life - 1]
+            discarded = sum(aged) - sum(next_stock)
+            kept = sum(next_stock)
+            salvaged = 0
+        revenue = self.price * sold
+        ordering_cost = self.unit_cost * order
+        holding_cost = self.holding_cost * kept
+        spoilage_cost = self.spoilage_cost * (spoiled + discarded)
+        lost_sale_cost = self.lost_sale_cost * unmet
+        salvage_revenue = self.salvage_value * salvaged
+        reward = revenue + salvage_revenue - ordering_cost - holding_cost - spoilage_cost - lost_sale_cost
+        info = {
+            "sold": sold, "demand": demand, "lost": unmet, "spoiled": spoiled, "discarded": discarded,
+            "salvaged": salvaged, "kept": kept, "ordered": order,
+            "revenue": revenue, "ordering_cost": ordering_cost, "holding_cost": holding_cost,
+            "spoilage_cost": spoilage_cost, "lost_sale_cost": lost_sale_cost, "salvage_revenue": salvage_revenue,
+        }
+        return reward, next_stock, dict(info, shelf=shelf)
+
     def _observation(self) -> np.ndarray:
-        return np.concatenate([[self._day], self._stock]).astype(np.int64)
+        return np.array([self._day, *self._stock_list], dtype=np.int64)
 
     def _info(self) -> dict:
         return {"day": self._day, "weekday": WEEKDAY_NAMES[self._day % 7] if self._day < self.horizon else None}
 
+    def _set_stock(self, stock) -> None:
+        self._stock_list = [int(units) for units in stock]
+        self._stock = np.asarray(self._stock_list, dtype=np.int64)
+
     # ------------------------------------------------------------------ gym API
     def reset(self, *, seed: int | None = None, options: dict | None = None) -> tuple[np.ndarray, dict]:
-        """Start a season on day 0 with empty shelves."""
+        """Start a season on day 0 with empty shelves (the reset spends its one uniform of the protocol)."""
         super().reset(seed=seed)
+        self.np_random.random()  # the start distribution has one state; the draw keeps the protocol
         self._day = 0
-        self._stock = np.zeros(self.n_carried_ages, dtype=np.int64)
+        self._set_stock([0] * self.n_carried_ages)
         self._last = None
         self._episode_return = 0.0
         return self._observation(), self._info()
@@ -259,26 +316,22 @@ class RestockEnv(gym.Env):
     def step(self, action: Any) -> tuple[np.ndarray, float, bool, bool, dict]:
         if self._day >= self.horizon:
             raise RuntimeError("the season is over; call reset() before step()")
-        order = int(action)
-        if not self.action_space.contains(order):
+        try:
+            order = int(action)
+        except (TypeError, ValueError):
+            order = -1
+        if not 0 <= order <= self.max_order or order != action:
             raise ValueError(f"action must be an order of 0..{self.max_order} units, got {action!r}")
-        mean = self.weekly_demand_means[self._day % 7]
-        demand = min(int(self.np_random.poisson(mean)), self.max_demand)
+        cumulative = self._demand_cumulative[self._day % 7]
+        demand = bisect_right(cumulative, self.np_random.random())  # the first running sum above u
+        if demand == len(cumulative):
+            demand = 0  # no running sum above u (rounding): the protocol's first outcome
         last_day = self._day == self.horizon - 1
-        out = self._serve_days(
-            self._stock[None, :], np.array([order]), np.array([demand]), np.array([last_day])
-        )
-        info = {key: int(out[key][0]) for key in ("sold", "demand", "lost", "spoiled", "discarded", "salvaged", "kept", "ordered")}
-        info.update(
-            {
-                key: float(out[key][0])
-                for key in ("revenue", "ordering_cost", "holding_cost", "spoilage_cost", "lost_sale_cost", "salvage_revenue")
-            }
-        )
-        reward = float(out["reward"][0])
+        reward, next_stock, info = self._serve_day(order, demand, last_day)
         info.update(self._info())  # the day just served and its weekday
-        self._last = dict(info, shelf=out["shelf"][0].copy(), reward=reward)
-        self._stock = out["next_stock"][0].astype(np.int64)
+        self._last = dict(info, reward=reward)
+        info.pop("shelf")
+        self._set_stock(next_stock)
         self._day += 1
         self._episode_return += reward
         return self._observation(), reward, self._day >= self.horizon, False, info
@@ -298,7 +351,7 @@ class RestockEnv(gym.Env):
         if obs[0] >= self.horizon:
             raise ValueError(f"day {int(obs[0])} is the terminal layer; start days are 0..{self.horizon - 1}")
         self._day = int(obs[0])
-        self._stock = obs[1:].copy()
+        self._set_stock(obs[1:])
         self._last = None
         self._episode_return = 0.0
         return self._observation(), self._info()
@@ -313,6 +366,14 @@ class RestockEnv(gym.Env):
 
         Raises :class:`~qtally.envs.model.NoModelError` above ``model_state_limit`` states.
         """
+        return self.outcome_table().to_model()
+
+    def outcome_table(self) -> OutcomeTable:
+        """Every day's outcomes in sampling order: per state and order, demand ``0..max_demand``.
+
+        Each outcome keeps its own reward (two demands may lead to the same next state with
+        different profits), so a compiled engine replays ``step`` draw for draw.
+        """
         n_states, n_actions = self.n_states, self.max_order + 1
         if n_states > self.model_state_limit:
             raise NoModelError(
@@ -326,34 +387,29 @@ class RestockEnv(gym.Env):
         else:
             stock = np.zeros((1, 0), dtype=np.int64)
         n_demand = self.max_demand + 1
-        # One row per (stock, action, demand), in that order.
+        # One entry per (stock, action, demand), in that order: rows s * n_actions + a ascend.
         s_idx, a_idx, d_idx = (g.ravel() for g in np.meshgrid(np.arange(n_stock), np.arange(n_actions), np.arange(n_demand), indexing="ij"))
-        rows_all, cols_all, probs_all = [], [], []
-        rewards = np.zeros((n_states, n_actions))
+        next_states, probabilities, rewards = [], [], []
         for day in range(self.horizon):
-            pmf = demand_pmf(self.weekly_demand_means[day % 7], self.max_demand)
             last = np.full(s_idx.shape, day == self.horizon - 1)
             out = self._serve_days(stock[s_idx], a_idx.astype(np.int64), d_idx.astype(np.int64), last)
-            prob = pmf[d_idx]
-            state = day * n_stock + s_idx  # (day, stock) in C order
-            next_state = np.ravel_multi_index((np.full(s_idx.shape, day + 1), *out["next_stock"].T), self.nvec)
-            rows_all.append(state * n_actions + a_idx)
-            cols_all.append(next_state)
-            probs_all.append(prob)
-            expected = (out["reward"] * prob).reshape(n_stock, n_actions, n_demand).sum(axis=2)
-            rewards[day * n_stock : (day + 1) * n_stock] = expected
-        coo = sp.coo_array(
-            (np.concatenate(probs_all), (np.concatenate(rows_all), np.concatenate(cols_all))),
-            shape=(n_states * n_actions, n_states),
+            next_states.append(np.ravel_multi_index((np.full(s_idx.shape, day + 1), *out["next_stock"].T), self.nvec))
+            probabilities.append(self._demand_pmfs[day % 7][d_idx])
+            rewards.append(out["reward"].astype(np.float64))
+        live_rows = self.horizon * n_stock * n_actions
+        offsets = np.concatenate([np.arange(live_rows + 1) * n_demand, np.full(n_states * n_actions - live_rows, live_rows * n_demand)])
+        next_states = np.concatenate(next_states).astype(np.int64)
+        return OutcomeTable(
+            n_states=n_states,
+            n_actions=n_actions,
+            offsets=offsets.astype(np.int64),
+            next_states=next_states,
+            probabilities=np.concatenate(probabilities),
+            rewards=np.concatenate(rewards),
+            terminated=next_states >= self.horizon * n_stock,
+            start_states=np.array([0], dtype=np.int64),  # day 0, empty shelves
+            start_probabilities=np.array([1.0]),
         )
-        transitions = sp.csr_array(coo)
-        transitions.sum_duplicates()
-        transitions.eliminate_zeros()
-        terminal = np.zeros(n_states, dtype=bool)
-        terminal[self.horizon * n_stock :] = True
-        start = np.zeros(n_states)
-        start[0] = 1.0  # day 0, empty shelves
-        return TabularModel(transitions=transitions, rewards=rewards, terminal=terminal, start_distribution=start)
 
     # ------------------------------------------------------------------ rendering
     def render(self):
