@@ -28,6 +28,7 @@ from .policy.table_policy import Fallback
 from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tracking_uri
 from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
+from .control.truncation import resolve_step_cap
 from .trainer import TrainingOutcome, TrainingSettings, train
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
@@ -124,6 +125,17 @@ def prepare(cfg: DictConfig):
             f"variant=exploring_starts needs an environment whose start state can be set, and {spec.id!r} cannot; "
             "use variant=on_policy or variant=off_policy, or implement start_states()/reset_to() (see DEVELOPERS.md)"
         )
+    if cfg.engine == "compiled":  # auto falls back to gym by itself; an explicit request must hold before a run exists
+        from .engine.compiled import EngineUnavailable
+        from .trainer import choose_engine
+
+        try:
+            starts = list(environment.start_control.start_states()) if variant.needs_start_control else []
+            choose_engine("compiled", environment, variant, schedule, resolve_step_cap(cfg.env.step_cap, environment.n_states), starts)
+        except EngineUnavailable as exc:
+            environment.close()
+            evaluation_environment.close()
+            raise QtallyError(str(exc)) from None
     return variant, schedule, environment, evaluation_environment
 
 
@@ -193,6 +205,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         initial_value=cfg.initial_value,
         step_cap=cfg.env.step_cap,
         eval_seed=cfg.eval_seed,
+        engine=cfg.engine,
     )
     progress = progress_factory(cfg.episodes) if progress_factory else None
     try:
@@ -212,6 +225,9 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         if progress is not None:
             progress.close()
     mlflow.log_metric("visited_state_share", outcome.artifact.visited_share)
+    mlflow.set_tag("qtally.engine", f"{outcome.engine}: {outcome.engine_reason}"[:250])
+    if outcome.engine == "compiled":
+        mlflow.log_metric("engine_compile_seconds", outcome.compile_seconds)
     with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
         scratch_dir = Path(scratch)
         log_config(cfg, scratch_dir)

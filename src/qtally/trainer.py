@@ -26,7 +26,7 @@ from typing import Callable, Mapping, Protocol
 import numpy as np
 
 from .control.action_values import ActionValues
-from .control.streams import evaluation_base, evaluation_seeds
+from .control.streams import evaluation_base, evaluation_seeds, start_pair
 from .control.trainer_state import LogWindow, TrainerState
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
 from .engine.episodes import GymEpisodes
@@ -58,6 +58,7 @@ class TrainingSettings:
     truncation: str = "as_terminal"
     initial_value: float = 0.0
     step_cap: int | None = None  # None: derived from the table size (control/truncation.py)
+    engine: str = "auto"  # auto | gym | compiled (qtally.engine.compiled)
     eval_seed: int | None = None  # None: the evaluation stream of ``seed``; a number: shared by every run that names it
 
 
@@ -69,6 +70,9 @@ class TrainingOutcome:
     final_evaluation: dict[str, float] = field(default_factory=dict)
     capped_episodes: int = 0
     step_cap: int = 0
+    engine: str = "gym"
+    engine_reason: str = ""
+    compile_seconds: float = 0.0
 
 
 class Trainer:
@@ -100,7 +104,8 @@ class Trainer:
         self.facts = dict(facts or {})
         self.fallback = fallback  # what snapshots and the final policy do in states training never reached
         self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
-        self.episodes = GymEpisodes(environment, self.step_cap)
+        self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
+        self.engine, self.engine_reason, self.episodes = choose_engine(settings.engine, environment, variant, schedule, self.step_cap, self.start_states)
         self._evaluation_environment = evaluation_environment
         self.state = state or TrainerState.fresh(environment.n_states, environment.n_actions, settings.seed, settings.initial_value)
         if self.state.values.q.shape != (environment.n_states, environment.n_actions):
@@ -109,7 +114,6 @@ class Trainer:
             self.episodes.restore_rng_state(self.state.environment_rng)
         elif self.state.episode == 0:
             self.episodes.seed(self.state.streams.env_seed)
-        self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
         self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
 
     # ------------------------------------------------------------ pieces
@@ -156,9 +160,8 @@ class Trainer:
 
         start_observation = first_action = None
         if variant.needs_start_control:
-            starts = state.streams.starts
-            start_observation = self.start_states[int(starts.integers(len(self.start_states)))]
-            first_action = int(starts.integers(self.environment.n_actions))
+            index, first_action = start_pair(state.streams.starts.next(), len(self.start_states), self.environment.n_actions)
+            start_observation = self.start_states[index]
             state_visits[self.environment.encoder.encode(start_observation)] += 1
         played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
         arrays = played.arrays
@@ -176,6 +179,23 @@ class Trainer:
         state.capped_episodes += int(played.capped)
         mean_epsilon = sum(epsilons) / len(epsilons) if epsilons else 0.0
         state.window.add(played.total_reward, arrays.length, mean_epsilon, played.truncated, played.capped, used)
+
+    def _next_boundary(self, stop: int) -> int:
+        """The next episode after which something is logged, evaluated or saved (or ``stop``)."""
+        episode, settings = self.state.episode, self.settings
+        boundary = min(stop, (episode // settings.log_every + 1) * settings.log_every)
+        for every in (settings.eval_every, settings.snapshot_every):
+            if every:
+                boundary = min(boundary, (episode // every + 1) * every)
+        return boundary
+
+    def _play_until(self, episode: int) -> None:
+        """Play and learn every episode up to ``episode``, through the engine this trainer chose."""
+        if self.engine == "compiled":
+            self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode)
+            return
+        while self.state.episode < episode:
+            self.play_and_learn()
 
     def save_state(self, path) -> Path:
         """Write the whole state between two episodes, the environment's generator included."""
@@ -195,7 +215,7 @@ class Trainer:
         snapshot_dir = Path(tempfile.mkdtemp(prefix="qtally-snapshots-"))
         try:
             while state.episode < stop:
-                self.play_and_learn()
+                self._play_until(self._next_boundary(stop))
                 episode = state.episode
                 last = episode == settings.episodes
                 if episode % settings.log_every == 0 or last:
@@ -228,7 +248,48 @@ class Trainer:
             final_evaluation=state.final_evaluation,
             capped_episodes=state.capped_episodes,
             step_cap=self.step_cap,
+            engine=self.engine,
+            engine_reason=self.engine_reason,
+            compile_seconds=getattr(self.episodes, "compile_seconds", 0.0),
         )
+
+
+def choose_engine(requested: str, environment: TabularEnvironment, variant, schedule, step_cap: int, start_states: list):
+    """``(engine, reason, episode source)``: the compiled engine where it can run and was not refused.
+
+    ``auto`` takes it when the environment lists its outcomes and numba is installed;
+    ``compiled`` insists (a one-line :class:`EngineUnavailable` otherwise); ``gym`` never.
+    """
+    from .engine.compiled import ENGINE_CHOICES, CompiledEpisodes, EngineUnavailable, schedule_code, time_limit_of, variant_code
+    from .envs.model import NoModelError
+    from .envs.model_extraction import outcomes_of
+
+    if requested not in ENGINE_CHOICES:
+        raise ValueError(f"engine={requested!r} is unknown; choose one of {', '.join(ENGINE_CHOICES)}")
+    gym_source = GymEpisodes(environment, step_cap)
+    if requested == "gym":
+        return "gym", "engine=gym asked for", gym_source
+    try:
+        import numba  # noqa: F401
+    except ImportError:
+        reason = "numba is not installed (pip install numba)"
+        if requested == "compiled":
+            raise EngineUnavailable(f"engine=compiled: {reason}; or use engine=gym") from None
+        return "gym", reason, gym_source
+    try:
+        table = outcomes_of(environment.env)
+        if table.n_states != environment.n_states or table.n_actions != environment.n_actions:
+            raise EngineUnavailable(f"its outcome table is {table.n_states}x{table.n_actions}, the Q table {environment.n_states}x{environment.n_actions}")
+        variant_code(variant)
+        schedule_code(schedule)
+    except (NoModelError, EngineUnavailable) as exc:
+        if requested == "compiled":
+            raise EngineUnavailable(f"engine=compiled cannot run {environment.spec.id}: {exc}; use engine=gym") from None
+        return "gym", str(exc), gym_source
+    encode = environment.encoder.encode
+    starts = np.array([encode(o) for o in start_states], dtype=np.int64)
+    source = CompiledEpisodes(table, step_cap, time_limit_of(environment.env), starts)
+    return "compiled", f"{environment.spec.id} lists its outcomes ({table.n_states} states)", source
 
 
 def train(

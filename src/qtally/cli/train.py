@@ -62,6 +62,9 @@ def _train(cfg: DictConfig) -> str | float | None:
         print(f"  evaluation:   {ranking_note(evaluation.get('eval_return_ci95', float('nan')), cfg.eval_episodes, cfg.env.get('eval_resolution'))}")
         if summary.outcome.capped_episodes:
             print(f"  step cap:     {summary.outcome.capped_episodes} episode(s) reached env.step_cap={summary.outcome.step_cap} and were cut (treated as env.truncation={cfg.env.truncation})")
+        outcome = summary.outcome
+        compiled = f", compiled in {outcome.compile_seconds:.1f} s" if outcome.engine == "compiled" else ""
+        print(f"  engine:       {outcome.engine} ({outcome.engine_reason}{compiled})")
         print(f"  policy model: runs:/{summary.run_id}/policy")
         print(f"  tracking UI:  mlflow ui --backend-store-uri {summary.tracking_uri} --host 127.0.0.1")
     return summary.run_id

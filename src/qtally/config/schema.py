@@ -88,6 +88,7 @@ class TrainConfig:
     snapshot_every: int = 0
     initial_value: float = 0.0
     exact: bool = True
+    engine: str = "auto"  # auto | gym | compiled: how episodes are played (qtally.engine.compiled)
     rollout_animation: bool = True
     quiet: bool = False
 

@@ -9,6 +9,7 @@ from omegaconf import DictConfig
 from ..control.schedules import SCHEDULE_KINDS
 from ..control.variants import VARIANT_NAMES
 from ..control.truncation import TRUNCATION_CHOICES
+from ..engine.compiled import ENGINE_CHOICES
 from ..policy.table_policy import FALLBACK_RULES
 
 __all__ = ["ConfigError", "validate", "validate_env", "schedule_parameters"]
@@ -93,6 +94,9 @@ def validate(cfg: DictConfig) -> None:
     if cfg.schedule.kind.startswith("glie") and not parameters["scale"] > 0:  # written so nan fails too
         raise ConfigError(f"schedule.scale={parameters['scale']} must be positive")
     validate_fallback(cfg.get("policy_fallback"))
+    engine = cfg.get("engine", "auto")
+    if engine not in ENGINE_CHOICES:
+        raise ConfigError(f"engine={engine!r} is unknown; choose one of {', '.join(ENGINE_CHOICES)}")
     for key in ("log_every", "eval_episodes"):
         if cfg[key] <= 0:
             raise ConfigError(f"{key}={cfg[key]} must be positive")

@@ -5,7 +5,8 @@
 - ``env_seed``: the seed of the environment's own generator (passed to its first ``reset``);
 - ``acting``: the uniforms behind every decision of the acting policy, one per decision
   (the draw protocol of :mod:`qtally.policy.table_policy`), read through :class:`UniformDraws`;
-- ``starts``: the state-action pairs of exploring starts (or prediction's chosen starts);
+- ``starts``: the state-action pairs of exploring starts (or prediction's chosen starts),
+  one uniform per start read through :class:`UniformDraws` (:func:`start_pair`);
 - ``evaluation``: the base of the fixed evaluation seeds.
 
 So changing how often a run evaluates cannot shift a single training draw, and the whole
@@ -25,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["RandomStreams", "UniformDraws", "evaluation_base", "evaluation_seeds", "rollout_seeds", "SEED_MODULUS", "ROLLOUT_SEED_FLOOR"]
+__all__ = ["RandomStreams", "UniformDraws", "start_pair", "evaluation_base", "evaluation_seeds", "rollout_seeds", "SEED_MODULUS", "ROLLOUT_SEED_FLOOR"]
 
 SEED_MODULUS = 2**31 - 1  # seeds handed to environments stay in the 31-bit range every library accepts
 ROLLOUT_SEED_FLOOR = 2**31  # rollout seeds start here, above every training and evaluation seed
@@ -33,35 +34,84 @@ _BLOCK = 1024
 
 
 class UniformDraws:
-    """Uniforms in [0, 1) from a generator, drawn in blocks but read one at a time.
+    """Uniforms in [0, 1) from a generator, drawn in blocks but read one at a time or as a window.
 
     A block of ``Generator.random(n)`` holds exactly the numbers that ``n`` single calls
-    would give, so the block size never changes the stream; it only saves the per-call cost.
+    would give, so the block size never changes the stream; it only saves the per-call
+    cost. :meth:`next` serves the gym path one number at a time; :meth:`window` and
+    :meth:`advance` serve compiled code, which reads many at once and says how many it used.
+    The state is the generator's state where the block began plus the position in it.
     """
 
     def __init__(self, generator: np.random.Generator):
         self.generator = generator
-        self._block_start_state = generator.bit_generator.state
-        self._block: list[float] = generator.random(_BLOCK).tolist()
+        self._rebase(0, _BLOCK)
+
+    def _rebase(self, skip: int, size: int) -> None:
+        """Start a fresh block of ``size`` numbers ``skip`` numbers after the current block's start."""
+        if skip:  # the generator is at the block start (see callers); move it past the numbers read
+            bit_generator = self.generator.bit_generator
+            if isinstance(bit_generator, np.random.PCG64):
+                bit_generator.advance(skip)  # one 64-bit draw per double: exact, and no array of skip numbers
+            else:
+                for start in range(0, skip, _BLOCK):
+                    self.generator.random(min(_BLOCK, skip - start))
+        self._block_start_state = self.generator.bit_generator.state
+        self._array = self.generator.random(size)
+        self._block: list[float] | None = None
         self._position = 0
 
+    def _restart_here(self, size: int) -> None:
+        self.generator.bit_generator.state = self._block_start_state
+        self._rebase(self._position, size)
+
     def next(self) -> float:
-        if self._position == _BLOCK:
-            self._block_start_state = self.generator.bit_generator.state
-            self._block = self.generator.random(_BLOCK).tolist()
-            self._position = 0
+        if self._block is None or self._position == len(self._block):
+            if self._position >= self._array.shape[0]:
+                self._restart_here(_BLOCK)
+            self._block = self._array.tolist()
         u = self._block[self._position]
         self._position += 1
         return u
+
+    def window(self, n: int) -> np.ndarray:
+        """The next ``n`` uniforms, without consuming them (call :meth:`advance` with the count used)."""
+        if self._array.shape[0] - self._position < n:
+            self._restart_here(max(int(n), _BLOCK))
+        return self._array[self._position : self._position + n]
+
+    def advance(self, used: int) -> None:
+        if not 0 <= used <= self._array.shape[0] - self._position:
+            raise ValueError(f"cannot consume {used} uniforms: {self._array.shape[0] - self._position} are left in the window")
+        self._position += int(used)
+
+    def generator_state_here(self) -> dict[str, Any]:
+        """The bit generator's state as if exactly the numbers read so far had been drawn one by one."""
+        scratch = UniformDraws.__new__(UniformDraws)
+        scratch.generator = np.random.Generator(type(self.generator.bit_generator)())
+        scratch.generator.bit_generator.state = self._block_start_state
+        scratch._rebase(self._position, 0)
+        return scratch._block_start_state
 
     def state(self) -> dict[str, Any]:
         return {"block_start": self._block_start_state, "position": self._position}
 
     def restore(self, state: dict[str, Any]) -> None:
         self.generator.bit_generator.state = state["block_start"]
-        self._block_start_state = self.generator.bit_generator.state
-        self._block = self.generator.random(_BLOCK).tolist()
-        self._position = int(state["position"])
+        self._rebase(int(state["position"]), _BLOCK)
+
+
+def start_pair(u: float, n_starts: int, n_actions: int) -> tuple[int, int]:
+    """A start and a first action from one uniform, each uniform over its range.
+
+    ``floor(u * n_starts * n_actions)`` indexes the pairs in order (start major), so a
+    compiled engine that reads the same uniform picks the same pair.
+
+    >>> start_pair(0.0, 3, 2), start_pair(0.5, 3, 2), start_pair(0.999, 3, 2)
+    ((0, 0), (1, 1), (2, 1))
+    """
+    pairs = n_starts * n_actions
+    return divmod(min(int(u * pairs), pairs - 1), n_actions)
 
 
 def evaluation_base(seed: int, eval_seed: int | None = None) -> int:
@@ -105,15 +155,15 @@ class RandomStreams:
         self.seed = int(seed)
         self.env_seed = int(env_sequence.generate_state(1)[0]) % SEED_MODULUS
         self.acting = UniformDraws(np.random.default_rng(acting_sequence))
-        self.starts = np.random.default_rng(start_sequence)
+        self.starts = UniformDraws(np.random.default_rng(start_sequence))
         self.evaluation_base = int(evaluation_sequence.generate_state(1)[0]) % SEED_MODULUS
 
     def state(self) -> dict[str, Any]:
         """Everything needed to continue every stream exactly where it is (JSON-able)."""
-        return {"seed": self.seed, "acting": self.acting.state(), "starts": self.starts.bit_generator.state}
+        return {"seed": self.seed, "acting": self.acting.state(), "starts": self.starts.state()}
 
     def restore(self, state: dict[str, Any]) -> None:
         if int(state["seed"]) != self.seed:
             raise ValueError(f"these streams belong to seed {state['seed']}, not {self.seed}")
         self.acting.restore(state["acting"])
-        self.starts.bit_generator.state = state["starts"]
+        self.starts.restore(state["starts"])

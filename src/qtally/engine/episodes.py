@@ -75,9 +75,7 @@ class GymEpisodes:
         env, encode = environment.env, environment.encoder.encode
         seed, self._pending_seed = self._pending_seed, None
         if start_observation is not None:
-            if seed is not None:
-                env.reset(seed=seed)
-            observation, _ = environment.start_control.reset_to(start_observation)
+            observation, _ = environment.start_control.reset_to(start_observation, seed=seed)
         else:
             observation, _ = env.reset(seed=seed)
         states: list[int] = []

@@ -6,8 +6,9 @@ its start cannot be set. It first asks the environment itself (a custom environm
 implements ``start_states()`` and ``reset_to()``), then the adapters here, which know
 the internals of Gymnasium's FrozenLake, CliffWalking, Taxi and Blackjack.
 
-Every ``reset_to`` first calls the wrapped environment's ``reset()`` so wrappers (the
-time limit, for one) start a fresh episode, then moves the core into the chosen state.
+Every ``reset_to`` first calls the wrapped environment's ``reset()`` (with ``seed`` when
+the episode source seeds this episode) so wrappers (the time limit, for one) start a fresh
+episode, then moves the core into the chosen state. So a start spends exactly one reset.
 """
 
 from __future__ import annotations
@@ -32,8 +33,8 @@ class _DelegatingStart:
     def start_states(self) -> Sequence[Any]:
         return list(self.core.start_states())
 
-    def reset_to(self, observation: Any) -> tuple[Any, dict]:
-        self.env.reset()
+    def reset_to(self, observation: Any, seed: int | None = None) -> tuple[Any, dict]:
+        self.env.reset(seed=seed)
         return self.core.reset_to(observation)
 
 
@@ -48,8 +49,8 @@ class _GridStart:
     def start_states(self) -> Sequence[int]:
         return self._states
 
-    def reset_to(self, observation: Any) -> tuple[int, dict]:
-        _, info = self.env.reset()
+    def reset_to(self, observation: Any, seed: int | None = None) -> tuple[int, dict]:
+        _, info = self.env.reset(seed=seed)
         self.core.s = int(observation)
         self.core.lastaction = None
         return int(observation), info
@@ -113,14 +114,14 @@ class _BlackjackStart:
     def start_states(self) -> Sequence[tuple[int, int, int]]:
         return blackjack_start_states()
 
-    def reset_to(self, observation: Any) -> tuple[tuple[int, int, int], dict]:
+    def reset_to(self, observation: Any, seed: int | None = None) -> tuple[tuple[int, int, int], dict]:
         from gymnasium.envs.toy_text.blackjack import draw_card
 
         player_sum, dealer_card, usable_ace = (int(v) for v in observation)
         if not 1 <= dealer_card <= 10:
             raise ValueError(f"the dealer's card is 1..10 (1 is an ace), got {dealer_card}")
         hand = blackjack_start_hand(player_sum, usable_ace)
-        _, info = self.env.reset()
+        _, info = self.env.reset(seed=seed)
         self.core.player = hand
         self.core.dealer = [dealer_card, draw_card(self.core.np_random)]
         # Keep the rendered face-up card in step with the dealer's card (the suit stays as dealt).

@@ -14,7 +14,7 @@ from typing import Any, Protocol, Sequence
 
 import numpy as np
 
-from ..control.streams import RandomStreams
+from ..control.streams import RandomStreams, start_pair
 from ..control.truncation import check_truncation, resolve_step_cap, tail_value
 from ..engine.episodes import GymEpisodes
 from ..policy.table_policy import sample_action
@@ -102,9 +102,10 @@ def play_prediction_episodes(
     for episode in range(episodes):
         observation, first_action = start_observation, start_action
         if starts is not None:
-            observation = starts[int(streams.starts.integers(len(starts)))]
+            index, action = start_pair(streams.starts.next(), len(starts), environment.n_actions if random_first_action else 1)
+            observation = starts[index]
             if random_first_action:
-                first_action = int(streams.starts.integers(environment.n_actions))
+                first_action = action
         played = source.play(choose, start_observation=observation, first_action=first_action)
         arrays = played.arrays
         total_returns[episode] = played.total_reward

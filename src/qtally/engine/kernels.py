@@ -1,0 +1,241 @@
+"""The compiled learning kernel: whole episodes from an outcome table, and their updates, in numba.
+
+This is the gym path's ``Trainer.play_and_learn`` plus the variants' updates, rewritten for
+machine code over arrays (:mod:`qtally.engine.compiled` wires it). Every arithmetic step
+is the same as the Python path's, in the same order, so both produce the same floats:
+the acting decision (:func:`qtally.policy.table_policy.epsilon_greedy_decision`), the
+schedules (:mod:`qtally.control.schedules`), the tail value (:mod:`qtally.control.truncation`
+and each variant's ``tail_value``) and the backward updates (:mod:`qtally.control.variants`).
+The tests hold the two paths to equality, Q table bit for bit.
+
+Uniforms come in windows from three streams (environment, acting, starts); the kernel
+stops before an episode that might run out of any and says how many it read.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+# Codes shared with qtally.engine.compiled.
+EXPLORING_STARTS, ON_POLICY, OFF_POLICY = 0, 1, 2
+CONSTANT, LINEAR, EXPONENTIAL, GLIE_EPISODE, GLIE_VISITS = 0, 1, 2, 3, 4
+AS_TERMINAL, BOOTSTRAP, DISCARD = 0, 1, 2
+
+
+@njit(cache=True)
+def _epsilon(kind, p0, p1, p2, episode, state_visits):
+    """The schedule's epsilon (the same expressions as qtally.control.schedules)."""
+    if kind == CONSTANT:
+        return p0
+    if kind == LINEAR:
+        fraction = min(1.0, (episode - 1) / p2)
+        return p0 + (p1 - p0) * fraction
+    if kind == EXPONENTIAL:
+        return max(p2, p0 * math.pow(p1, float(episode - 1)))
+    if kind == GLIE_EPISODE:
+        return max(p1, min(1.0, p0 / episode))
+    return max(p1, min(1.0, p0 / (state_visits + 1)))
+
+
+@njit(cache=True)
+def _greedy(q, s):
+    """The lowest index among the row's largest values (numpy's argmax)."""
+    best = 0
+    value = q[s, 0]
+    for a in range(1, q.shape[1]):
+        if q[s, a] > value:
+            value = q[s, a]
+            best = a
+    return best
+
+
+@njit(cache=True)
+def _pick(probabilities, lo, hi, u):
+    """The draw protocol: the first outcome whose running sum exceeds u, else the first."""
+    total = 0.0
+    for k in range(lo, hi):
+        total += probabilities[k]
+        if total > u:
+            return k
+    return lo
+
+
+@njit(cache=True)
+def learn_episodes(
+    n_episodes, episode_before,
+    offsets, next_states, probabilities, rewards, terminated, start_states, start_probabilities, es_starts,
+    q, visits, weights, state_visits,
+    env_u, acting_u, start_u,
+    variant, first_visit, gamma, step_size,
+    schedule_kind, p0, p1, p2,
+    truncation, time_limit, step_cap,
+    buffer_states, buffer_actions, buffer_rewards, buffer_probabilities, first_time,
+    window,
+):
+    """Play and learn up to ``n_episodes`` episodes; return (episodes done, env, acting, start uniforms read).
+
+    ``step_size`` < 0 means the sample average. ``time_limit`` 0 means none. ``window``
+    holds the logging window's running sums (episodes, return, length, epsilon, truncated,
+    capped, steps used), added to one episode at a time as :class:`LogWindow.add` does.
+    """
+    n_actions = q.shape[1]
+    max_length = buffer_states.shape[0]
+    env_used = 0
+    acting_used = 0
+    start_used = 0
+    done = 0
+    while done < n_episodes:
+        if env_u.shape[0] - env_used < max_length + 1 or acting_u.shape[0] - acting_used < max_length:
+            break
+        if variant == EXPLORING_STARTS and start_u.shape[0] - start_used < 1:
+            break
+        episode = episode_before + done + 1
+        # ---------------------------------------------------------- start
+        u_reset = env_u[env_used]
+        env_used += 1
+        forced = -1
+        if variant == EXPLORING_STARTS:
+            pairs = es_starts.shape[0] * n_actions
+            index = min(int(start_u[start_used] * pairs), pairs - 1)
+            start_used += 1
+            state = es_starts[index // n_actions]
+            forced = index % n_actions
+            state_visits[state] += 1
+        else:
+            state = start_states[_pick(start_probabilities, 0, start_probabilities.shape[0], u_reset)]
+        # ---------------------------------------------------------- play
+        length = 0
+        total = 0.0
+        epsilon_sum = 0.0
+        decisions = 0
+        is_terminated = False
+        is_truncated = False
+        capped = False
+        while True:
+            if forced >= 0 and length == 0:
+                action = forced
+                probability = 1.0
+            else:
+                epsilon = 0.0
+                if variant != EXPLORING_STARTS:
+                    epsilon = _epsilon(schedule_kind, p0, p1, p2, episode, state_visits[state])
+                epsilon_sum += epsilon
+                decisions += 1
+                state_visits[state] += 1
+                u = acting_u[acting_used]
+                acting_used += 1
+                greedy = _greedy(q, state)
+                if u < epsilon:
+                    action = min(int(u / epsilon * n_actions), n_actions - 1)
+                else:
+                    action = greedy
+                probability = epsilon / n_actions + ((1.0 - epsilon) if action == greedy else 0.0)
+            row = state * n_actions + action
+            k = _pick(probabilities, offsets[row], offsets[row + 1], env_u[env_used])
+            env_used += 1
+            buffer_states[length] = state
+            buffer_actions[length] = action
+            buffer_rewards[length] = rewards[k]
+            buffer_probabilities[length] = probability
+            total += rewards[k]
+            length += 1
+            state = next_states[k]
+            is_terminated = terminated[k]
+            if is_terminated or (time_limit > 0 and length >= time_limit):
+                is_truncated = not is_terminated
+                break
+            if length >= step_cap:
+                is_truncated = True
+                capped = True
+                break
+        # ---------------------------------------------------------- tail
+        learn = True
+        tail = 0.0
+        if is_truncated and truncation == BOOTSTRAP:
+            if variant == ON_POLICY:
+                epsilon = _epsilon(schedule_kind, p0, p1, p2, episode, state_visits[state])
+                row_sum = 0.0
+                row_max = q[state, 0]
+                for a in range(n_actions):
+                    row_sum += q[state, a]
+                    if q[state, a] > row_max:
+                        row_max = q[state, a]
+                tail = epsilon * (row_sum / n_actions) + (1.0 - epsilon) * row_max
+            else:
+                tail = q[state, _greedy(q, state)]
+        elif is_truncated and truncation == DISCARD:
+            learn = False
+        # ---------------------------------------------------------- update
+        used = 0
+        if learn and length > 0:
+            if first_visit:
+                for t in range(length):
+                    key = buffer_states[t] * n_actions + buffer_actions[t]
+                    if first_time[key] < 0:
+                        first_time[key] = t
+            g = tail
+            w = 1.0
+            for t in range(length - 1, -1, -1):
+                s = buffer_states[t]
+                a = buffer_actions[t]
+                g = gamma * g + buffer_rewards[t]
+                counted = (not first_visit) or first_time[s * n_actions + a] == t
+                if variant == OFF_POLICY:
+                    if counted:
+                        weights[s, a] += w
+                        visits[s, a] += 1
+                        step = w / weights[s, a] if step_size < 0.0 else min(1.0, step_size * w)
+                        q[s, a] += step * (g - q[s, a])
+                    used += 1
+                    if a != _greedy(q, s):
+                        break
+                    w /= buffer_probabilities[t]
+                else:
+                    if counted:
+                        visits[s, a] += 1
+                        step = 1.0 / visits[s, a] if step_size < 0.0 else step_size
+                        q[s, a] += step * (g - q[s, a])
+            if variant != OFF_POLICY:
+                used = length
+            if first_visit:
+                for t in range(length):
+                    first_time[buffer_states[t] * n_actions + buffer_actions[t]] = -1
+        window[0] += 1
+        window[1] += total
+        window[2] += length
+        window[3] += epsilon_sum / decisions if decisions > 0 else 0.0
+        window[4] += is_truncated
+        window[5] += capped
+        window[6] += used
+        done += 1
+    return done, env_used, acting_used, start_used
+
+
+@njit(cache=True)
+def reference_kernel(offsets, next_states, probabilities, terminated, start_states, start_probabilities, q, n_steps, seed):
+    """The benchmark's limit: epsilon-greedy episodes from a table, nothing recorded, no updates.
+
+    Uniforms come from numba's own generator, so this is the least work a step can be.
+    """
+    np.random.seed(seed)
+    n_actions = q.shape[1]
+    steps = 0
+    episodes = 0
+    while steps < n_steps:
+        state = start_states[_pick(start_probabilities, 0, start_probabilities.shape[0], np.random.random())]
+        episodes += 1
+        for _ in range(200):
+            if np.random.random() < 0.1:
+                action = np.random.randint(n_actions)
+            else:
+                action = _greedy(q, state)
+            row = state * n_actions + action
+            k = _pick(probabilities, offsets[row], offsets[row + 1], np.random.random())
+            steps += 1
+            state = next_states[k]
+            if terminated[k]:
+                break
+    return steps, episodes
