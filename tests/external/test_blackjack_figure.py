@@ -22,25 +22,7 @@ from qtally.control.variants import make_variant
 from qtally.envs.factory import EnvironmentSpec, make_environment
 from qtally.envs.start_adapters import blackjack_start_states
 from qtally.trainer import TrainingSettings, train
-
-STICK, HIT = 0, 1
-
-
-def figure_5_2_action(player_sum: int, dealer_card: int, usable_ace: int) -> int:
-    """The published optimal action (dealer_card 1 is an ace)."""
-    if usable_ace:
-        if player_sum >= 19:
-            return STICK
-        if player_sum == 18:
-            return STICK if 2 <= dealer_card <= 8 else HIT
-        return HIT
-    if player_sum >= 17:
-        return STICK
-    if 13 <= player_sum <= 16:
-        return STICK if 2 <= dealer_card <= 6 else HIT
-    if player_sum == 12:
-        return STICK if 4 <= dealer_card <= 6 else HIT
-    return HIT
+from support.blackjack_figure import HIT, STICK, figure_5_2_action
 
 
 def _agreement(environment, outcome, episodes: int, min_share: float) -> tuple[float, int]:
