@@ -143,42 +143,80 @@ class Trainer:
         return metrics
 
     def play_and_learn(self) -> None:
-        """One episode: choose a start, play it, update the table, add it to the window."""
+        """One episode on the gym path: choose a start, play it, update the table, add it to the window.
+
+        Kept lean, since it runs for every step: epsilon is computed once per episode unless
+        the schedule depends on the state, the greedy action comes from the row as a list,
+        and the update reads the episode's lists. The compiled kernel does the same sums in
+        the same order (:mod:`qtally.engine.kernels`).
+        """
         state, variant, schedule = self.state, self.variant, self.schedule
         values = state.values
         q, state_visits = values.q, values.state_visits
         state.episode += 1
         episode = state.episode
         next_uniform = state.streams.acting.next
-        epsilons: list[float] = []
+        n_actions = self.environment.n_actions
+        decisions = 0
+        epsilon_sum = 0.0
 
-        def choose(s: int) -> tuple[int, float]:
-            epsilon = variant.behaviour_epsilon(schedule(episode, int(state_visits[s])))
-            epsilons.append(epsilon)
-            state_visits[s] += 1
-            return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
+        if getattr(schedule, "per_state", False):
+            behaviour_epsilon = variant.behaviour_epsilon
+            epsilons: list[float] = []
+
+            def choose(s: int) -> tuple[int, float]:
+                epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s])))
+                epsilons.append(epsilon)
+                state_visits[s] += 1
+                return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
+        else:
+            epsilon = variant.behaviour_epsilon(schedule(episode, 0))
+            epsilons = None
+            visited: list[int] = []
+            remember = visited.append
+            explore = epsilon / n_actions
+            exploit = explore + (1.0 - epsilon)
+
+            def choose(s: int) -> tuple[int, float]:
+                remember(s)
+                row = q[s].tolist()
+                greedy = row.index(max(row))
+                u = next_uniform()
+                if u < epsilon:
+                    action = min(int(u / epsilon * n_actions), n_actions - 1)
+                    return action, (exploit if action == greedy else explore)
+                return greedy, exploit
 
         start_observation = first_action = None
         if variant.needs_start_control:
-            index, first_action = start_pair(state.streams.starts.next(), len(self.start_states), self.environment.n_actions)
+            index, first_action = start_pair(state.streams.starts.next(), len(self.start_states), n_actions)
             start_observation = self.start_states[index]
             state_visits[self.environment.encoder.encode(start_observation)] += 1
         played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
-        arrays = played.arrays
+        if epsilons is None:
+            for s in visited:  # counted after the episode: nothing in it depends on the count
+                state_visits[s] += 1
+            decisions = len(visited)
+            for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
+                epsilon_sum += epsilon
+        else:
+            decisions = len(epsilons)
+            for e in epsilons:
+                epsilon_sum += e
 
-        def bootstrap_value() -> float:
-            final = played.final_state
-            epsilon = variant.behaviour_epsilon(schedule(episode, int(state_visits[final])))
-            return variant.tail_value(q[final], epsilon)
+        tail = 0.0
+        if played.truncated and self.settings.truncation != "as_terminal":
+            def bootstrap_value() -> float:
+                final = played.final_state
+                epsilon_final = variant.behaviour_epsilon(schedule(episode, int(state_visits[final])))
+                return variant.tail_value(q[final], epsilon_final)
 
-        tail = tail_value(self.settings.truncation, truncated=played.truncated, bootstrap_value=bootstrap_value)
+            tail = tail_value(self.settings.truncation, truncated=True, bootstrap_value=bootstrap_value)
         used = 0
         if tail is not None:
-            used = variant.update(values, arrays.with_tail(tail) if tail else arrays)
-            used = arrays.length if used is None else used
-        state.capped_episodes += int(played.capped)
-        mean_epsilon = sum(epsilons) / len(epsilons) if epsilons else 0.0
-        state.window.add(played.total_reward, arrays.length, mean_epsilon, played.truncated, played.capped, used)
+            used = variant.update_lists(values, played.states, played.actions, played.rewards, played.probabilities, tail)
+        state.capped_episodes += played.capped
+        state.window.add(played.total_reward, played.length, epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)
 
     def _next_boundary(self, stop: int) -> int:
         """The next episode after which something is logged, evaluated or saved (or ``stop``)."""

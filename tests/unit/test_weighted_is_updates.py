@@ -82,7 +82,7 @@ def test_an_empty_episode_uses_no_steps_and_changes_nothing():
     values = ActionValues.zeros(2, 2)
     empty = _episode([], [], [], [])
     assert OffPolicy(gamma=1.0).update(values, empty) == 0
-    assert OnPolicy(gamma=1.0).update(values, empty) is None
+    assert OnPolicy(gamma=1.0).update(values, empty) == 0
     assert not values.visits.any() and not values.q.any()
 
 

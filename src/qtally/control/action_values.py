@@ -7,6 +7,7 @@ incrementally and no list of returns is ever kept.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -38,6 +39,15 @@ class ActionValues:
     @property
     def n_actions(self) -> int:
         return self.q.shape[1]
+
+    @cached_property
+    def flat(self) -> tuple[memoryview, memoryview, memoryview]:
+        """``q``, ``visits`` and ``cumulative_weights`` as flat memoryviews, indexed ``s * n_actions + a``.
+
+        The Python updates read and write single entries; a memoryview does that several
+        times faster than numpy's scalar indexing, on the same memory (so the arrays see it).
+        """
+        return tuple(memoryview(array).cast("B").cast(array.dtype.char) for array in (self.q, self.visits, self.cumulative_weights))
 
     def coverage(self) -> float:
         """Fraction of state-action pairs whose estimate has absorbed at least one return."""

@@ -51,23 +51,31 @@ class _EvaluationUpdate:
     first_visit: bool = True
     step_size: float | None = None
 
-    def update(self, values: ActionValues, episode: EpisodeArrays) -> None:
-        if episode.length == 0:
-            return
+    def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
+        """Update from an episode's arrays; return how many time steps were used."""
+        return self.update_lists(
+            values, episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist(), episode.behaviour_probabilities.tolist(), episode.tail_value
+        )
+
+    def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float) -> int:
+        """The same update from plain lists (what the trainer holds after an episode)."""
+        if not states:
+            return 0
         n_actions = values.n_actions
-        states, actions, rewards = episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist()
         keys = [s * n_actions + a for s, a in zip(states, actions)]
         first = _first_visit_times(keys) if self.first_visit else None
-        q, visits, gamma, step_size = values.q, values.visits, self.gamma, self.step_size
-        g = episode.tail_value
+        q, visits, _ = values.flat
+        gamma, step_size = self.gamma, self.step_size
+        g = tail_value
         for t in range(len(keys) - 1, -1, -1):
             g = gamma * g + rewards[t]
-            if first is not None and first[keys[t]] != t:
+            key = keys[t]
+            if first is not None and first[key] != t:
                 continue
-            s, a = states[t], actions[t]
-            visits[s, a] += 1
-            step = 1.0 / visits[s, a] if step_size is None else step_size
-            q[s, a] += step * (g - q[s, a])
+            visits[key] += 1
+            step = 1.0 / visits[key] if step_size is None else step_size
+            q[key] += step * (g - q[key])
+        return len(keys)
 
 
 @dataclass(frozen=True)
@@ -120,28 +128,34 @@ class OffPolicy:
 
     def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
         """Run the weighted-IS backward loop; return how many time steps were used."""
-        if episode.length == 0:
+        return self.update_lists(
+            values, episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist(), episode.behaviour_probabilities.tolist(), episode.tail_value
+        )
+
+    def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, behaviour: list, tail_value: float) -> int:
+        """The same update from plain lists (what the trainer holds after an episode)."""
+        if not states:
             return 0
         n_actions = values.n_actions
-        keys = (episode.states * n_actions + episode.actions).tolist()
+        keys = [s * n_actions + a for s, a in zip(states, actions)]
         first = _first_visit_times(keys) if self.first_visit else None
-        q, weights_sum, visits = values.q, values.cumulative_weights, values.visits
-        states, actions = episode.states.tolist(), episode.actions.tolist()
-        rewards, behaviour = episode.rewards.tolist(), episode.behaviour_probabilities.tolist()
+        q, visits, weights_sum = values.flat
         gamma, step_size = self.gamma, self.step_size
-        g = episode.tail_value
+        g = tail_value
         w = 1.0
         used = 0
-        for t in range(episode.length - 1, -1, -1):
-            s, a = states[t], actions[t]
+        for t in range(len(states) - 1, -1, -1):
+            key = keys[t]
             g = gamma * g + rewards[t]
-            if first is None or first[keys[t]] == t:
-                weights_sum[s, a] += w
-                visits[s, a] += 1
-                step = w / weights_sum[s, a] if step_size is None else min(1.0, step_size * w)
-                q[s, a] += step * (g - q[s, a])
+            if first is None or first[key] == t:
+                weights_sum[key] += w
+                visits[key] += 1
+                step = w / weights_sum[key] if step_size is None else min(1.0, step_size * w)
+                q[key] += step * (g - q[key])
             used += 1
-            if a != int(q[s].argmax()):  # the greedy target (lowest index on ties) would not take a
+            row_start = key - actions[t]
+            row = q[row_start : row_start + n_actions].tolist()
+            if actions[t] != row.index(max(row)):  # the greedy target (lowest index on ties) would not take a
                 break
             w /= behaviour[t]  # pi(a|s) = 1 for the target action
         return used

@@ -14,31 +14,73 @@ and :meth:`GymEpisodes.restore_rng_state` capture and restore that stream betwee
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any, Callable
 
+import gymnasium as gym
 import numpy as np
 
 from ..control.episodes import EpisodeArrays
+from ..envs.encoders import DiscreteEncoder
 from ..envs.factory import TabularEnvironment
 
 __all__ = ["PlayedEpisode", "GymEpisodes", "Chooser"]
+
+# Wrappers that only keep books qtally keeps itself: the time limit (counted here, see
+# GymEpisodes.play), the reset-before-step check (play always resets first) and the API
+# checker (disabled at make). Stepping past them saves a Python call per layer and step.
+_BOOKKEEPING = ("TimeLimit", "OrderEnforcing", "PassiveEnvChecker")
+
+
+def _bookkeeping_free(env) -> tuple[Any, int]:
+    """``(what to step, time limit)``: the core env when only bookkeeping wrappers sit on it, else ``env``.
+
+    The time limit is the ``TimeLimit`` wrapper's (0 when there is none, or when ``env``
+    is stepped as it is and its own wrapper counts).
+    """
+    layer, limit = env, 0
+    while isinstance(layer, gym.Wrapper):
+        if type(layer).__name__ not in _BOOKKEEPING:
+            return env, 0
+        if type(layer).__name__ == "TimeLimit":
+            limit = int(layer._max_episode_steps)
+        layer = layer.env
+    return layer, limit
 
 Chooser = Callable[[int], tuple[int, float]]
 
 
 @dataclass(frozen=True)
 class PlayedEpisode:
-    """The episode's arrays plus how it ended.
+    """The episode as plain lists plus how it ended; :attr:`arrays` gives the numpy form.
 
     ``truncated``: cut by a time limit or by the step cap (then ``capped`` is also true).
+    The lists are what the trainer's update reads (one conversion fewer per episode);
+    estimators and reports take :attr:`arrays`.
     """
 
-    arrays: EpisodeArrays
+    states: list[int]
+    actions: list[int]
+    rewards: list[float]
+    probabilities: list[float]
     total_reward: float
     terminated: bool
     truncated: bool
     capped: bool
     final_state: int
+
+    @property
+    def length(self) -> int:
+        return len(self.states)
+
+    @cached_property
+    def arrays(self) -> EpisodeArrays:
+        return EpisodeArrays(
+            states=np.asarray(self.states, dtype=np.int64),
+            actions=np.asarray(self.actions, dtype=np.int64),
+            rewards=np.asarray(self.rewards, dtype=np.float64),
+            behaviour_probabilities=np.asarray(self.probabilities, dtype=np.float64),
+        )
 
 
 class GymEpisodes:
@@ -50,6 +92,10 @@ class GymEpisodes:
         self.environment = environment
         self.step_cap = int(step_cap)
         self._pending_seed: int | None = None
+        self._core, self._time_limit = _bookkeeping_free(environment.env)
+        encoder = environment.encoder
+        # A Discrete space numbered from 0 encodes as int itself: one call fewer per step.
+        self._encode = int if isinstance(encoder, DiscreteEncoder) and encoder.start == 0 else encoder.encode
 
     def seed(self, seed: int | None) -> None:
         """Seed the environment's generator at the next reset (``None``: leave it as it is)."""
@@ -72,7 +118,7 @@ class GymEpisodes:
         ``first_action`` forces the first action with probability 1 (exploring starts, chosen starts).
         """
         environment = self.environment
-        env, encode = environment.env, environment.encoder.encode
+        env, encode = environment.env, self._encode
         seed, self._pending_seed = self._pending_seed, None
         if start_observation is not None:
             observation, _ = environment.start_control.reset_to(start_observation, seed=seed)
@@ -82,34 +128,37 @@ class GymEpisodes:
         actions: list[int] = []
         rewards: list[float] = []
         probabilities: list[float] = []
+        add_state, add_action, add_reward, add_probability = states.append, actions.append, rewards.append, probabilities.append
         terminated = truncated = capped = False
         state = encode(observation)
-        step = env.step
-        cap = self.step_cap
+        step = self._core.step  # the resets above went through every wrapper; steps skip the bookkeeping ones
+        cap = self.step_cap if not self._time_limit else min(self.step_cap, self._time_limit)
+        limit_first = bool(self._time_limit) and self._time_limit <= self.step_cap
+        length = 0
+        if first_action is not None:
+            action, probability = int(first_action), 1.0
+        else:
+            action, probability = choose(state)
         while True:
-            if first_action is not None and not states:
-                action, probability = int(first_action), 1.0
-            else:
-                action, probability = choose(state)
             observation, reward, terminated, truncated, _ = step(action)
-            states.append(state)
-            actions.append(action)
-            rewards.append(float(reward))
-            probabilities.append(probability)
+            add_state(state)
+            add_action(action)
+            add_reward(float(reward))
+            add_probability(probability)
+            length += 1
             state = encode(observation)
             if terminated or truncated:
                 break
-            if len(states) >= cap:
-                truncated = capped = True
+            if length >= cap:  # the time limit (as TimeLimit counts it) comes before the step cap
+                truncated = True
+                capped = not limit_first
                 break
-        arrays = EpisodeArrays(
-            states=np.asarray(states, dtype=np.int64),
-            actions=np.asarray(actions, dtype=np.int64),
-            rewards=np.asarray(rewards, dtype=np.float64),
-            behaviour_probabilities=np.asarray(probabilities, dtype=np.float64),
-        )
+            action, probability = choose(state)
         return PlayedEpisode(
-            arrays=arrays,
+            states=states,
+            actions=actions,
+            rewards=rewards,
+            probabilities=probabilities,
             total_reward=float(sum(rewards)),
             terminated=bool(terminated),
             truncated=bool(truncated and not terminated),

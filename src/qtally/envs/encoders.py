@@ -101,14 +101,32 @@ class PartsEncoder:
         strides = np.cumprod((1,) + tuple(self.sizes[:0:-1]))[::-1]
         return tuple(int(x) for x in strides)
 
+    @cached_property
+    def _unrolled(self):
+        """``encode`` written out for this many parts: it runs once per step, and the loop costs twice as much."""
+        names = [f"p{i}" for i in range(self.width)]
+        checks = " and ".join(f"0 <= {n} < {size}" for n, size in zip(names, self.sizes)) or "True"
+        total = " + ".join(f"{n} * {stride}" for n, stride in zip(names, self._strides)) or "0"
+        shifts = "".join(f"    {n} = int({n}) - {start}\n" for n, start in zip(names, self.starts))
+        source = (
+            "def encode(observation):\n"
+            f"    {', '.join(names)}, = observation.tolist() if observation.__class__ is ndarray else observation\n"
+            f"{shifts}"
+            f"    if {checks}:\n"
+            f"        return {total}\n"
+            "    raise EncoderError(f'observation {observation!r} is outside the table range')\n"
+        )
+        scope = {"ndarray": np.ndarray, "EncoderError": EncoderError}
+        exec(compile(source, f"<qtally parts encoder {self.sizes}>", "exec"), scope)  # source built from integers only
+        return scope["encode"]
+
     def encode(self, observation: Any) -> int:
-        index = 0
-        for value, start, size, stride in zip(observation, self.starts, self.sizes, self._strides):
-            part = int(value) - start
-            if not 0 <= part < size:
-                raise EncoderError(f"observation part value {value} is outside the table's range")
-            index += part * stride
-        return index
+        try:
+            return self._unrolled(observation)
+        except (TypeError, ValueError) as exc:
+            if isinstance(exc, EncoderError):
+                raise
+            raise EncoderError(f"observation {observation!r} does not have {self.width} parts") from None
 
     def encode_batch(self, observations: np.ndarray) -> np.ndarray:
         rows = _as_batch(observations, self.width).astype(np.int64) - np.asarray(self.starts)

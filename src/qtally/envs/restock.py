@@ -183,6 +183,7 @@ class RestockEnv(gym.Env):
         self.n_carried_ages = self.shelf_life - 1
         self.nvec = np.array([self.horizon + 1] + [self.stock_cap + 1] * self.n_carried_ages, dtype=np.int64)
         self.observation_space = spaces.MultiDiscrete(self.nvec)
+        self._nvec_list = self.nvec.tolist()
         self.action_space = spaces.Discrete(self.max_order + 1)
         self.observation_names = ("day",) + tuple(f"stock_age{a}" for a in range(1, self.shelf_life))
         self.action_names = tuple(f"order_{q}" for q in range(self.max_order + 1))
@@ -345,13 +346,13 @@ class RestockEnv(gym.Env):
 
     def reset_to(self, observation: Any) -> tuple[np.ndarray, dict]:
         """Start the episode in ``observation`` = ``(day, stock_age1, ...)``; no reseeding."""
-        obs = np.asarray(observation, dtype=np.int64).reshape(-1)
-        if obs.shape != self.nvec.shape or not self.observation_space.contains(obs):
+        values = np.asarray(observation).reshape(-1).tolist()  # checked in plain Python: this runs once per exploring start
+        if len(values) != len(self._nvec_list) or not all(type(v) is int and 0 <= v < n for v, n in zip(values, self._nvec_list)):
             raise ValueError(f"{observation!r} is not an observation of {self.observation_space}")
-        if obs[0] >= self.horizon:
-            raise ValueError(f"day {int(obs[0])} is the terminal layer; start days are 0..{self.horizon - 1}")
-        self._day = int(obs[0])
-        self._set_stock(obs[1:])
+        if values[0] >= self.horizon:
+            raise ValueError(f"day {values[0]} is the terminal layer; start days are 0..{self.horizon - 1}")
+        self._day = values[0]
+        self._set_stock(values[1:])
         self._last = None
         self._episode_return = 0.0
         return self._observation(), self._info()
