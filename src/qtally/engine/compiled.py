@@ -157,7 +157,7 @@ class CompiledEpisodes:
             started = time.perf_counter()
             done, env_used, acting_used, start_used = k.learn_episodes(
                 0 if first_call else n_episodes - done_total, state.episode,
-                table.offsets, table.next_states, table.probabilities, table.rewards, table.terminated,
+                table.offsets, table.next_states, table.probabilities, table.rewards, table.first_step_rewards, table.terminated,
                 table.start_states, table.start_probabilities, self.exploring_starts,
                 values.q, values.visits, values.cumulative_weights, values.state_visits,
                 env_u, acting_u, start_u,

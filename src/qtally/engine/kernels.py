@@ -66,7 +66,7 @@ def _pick(probabilities, lo, hi, u):
 @njit(cache=True)
 def learn_episodes(
     n_episodes, episode_before,
-    offsets, next_states, probabilities, rewards, terminated, start_states, start_probabilities, es_starts,
+    offsets, next_states, probabilities, rewards, opening_rewards, terminated, start_states, start_probabilities, es_starts,
     q, visits, weights, state_visits,
     env_u, acting_u, start_u,
     variant, first_visit, gamma, step_size,
@@ -138,9 +138,10 @@ def learn_episodes(
             env_used += 1
             buffer_states[length] = state
             buffer_actions[length] = action
-            buffer_rewards[length] = rewards[k]
+            reward = opening_rewards[k] if length == 0 else rewards[k]
+            buffer_rewards[length] = reward
             buffer_probabilities[length] = probability
-            total += rewards[k]
+            total += reward
             length += 1
             state = next_states[k]
             is_terminated = terminated[k]

@@ -39,7 +39,9 @@ sticking natural (0.035 against a ten up to 0.118 against a 2), in all 0.00344 o
 value for a policy that sticks on every natural (:func:`natural_start_correction`). Hitting
 a natural, and everything after a hit, is exact. The optimum's start value is -0.04656 in
 the table and so -0.04311 in the game. An engine that plays episodes from the table plays
-the table's game: its naturals stick for the hit 21's payout.
+the table's game, and :attr:`OutcomeTable.opening_rewards` pays an episode's first-step stick
+on a soft 21 as the natural it is (+1 unless the dealer also has a natural), so the compiled
+engine plays Blackjack exactly; only exact DP on the merged model uses the hit hand's payout.
 
 Other flags: ``sab=True`` overrides ``natural``, as in the environment. With ``sab=False,
 natural=False`` a natural is just a 21 (the environment compares totals), so the same table
@@ -176,6 +178,7 @@ def blackjack_outcome_table(sab: bool = True, natural: bool = False) -> OutcomeT
     encode = encoder.encode
     stood = encode(STOOD)
     rows: dict[tuple[int, int], list[tuple[float, int, float, bool]]] = {}
+    opening: dict[tuple[int, int], list[float]] = {}
     decision = set()
     for player_sum, dealer_card, usable_ace in blackjack_start_states():
         s = encode((player_sum, dealer_card, usable_ace))
@@ -185,6 +188,8 @@ def blackjack_outcome_table(sab: bool = True, natural: bool = False) -> OutcomeT
             for result, p in _dealer_results(dealer_card).items()
             if p > 0
         ]
+        if sab and (player_sum, usable_ace) == (21, 1):  # a soft 21 on the first step is a dealt natural
+            opening[(s, STICK)] = [1.0 if result != "natural" else 0.0 for result, p in _dealer_results(dealer_card).items() if p > 0]
         hits = []
         for card, p in CARD_PROBABILITIES.items():
             total, usable = _after_hit(player_sum, usable_ace, card)
@@ -196,7 +201,7 @@ def blackjack_outcome_table(sab: bool = True, natural: bool = False) -> OutcomeT
             for action in (STICK, HIT):
                 rows[(s, action)] = [(1.0, s, 0.0, True)]
     start_states, start_probabilities = _start_distribution(encode)
-    return OutcomeTable.from_rows(encoder.n_states, 2, rows, start_states, start_probabilities)
+    return OutcomeTable.from_rows(encoder.n_states, 2, rows, start_states, start_probabilities, opening_rewards=opening)
 
 
 def natural_stick_bonus(sab: bool = True, natural: bool = False) -> np.ndarray:

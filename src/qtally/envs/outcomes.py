@@ -66,6 +66,7 @@ class OutcomeTable:
     terminated: np.ndarray
     start_states: np.ndarray
     start_probabilities: np.ndarray
+    opening_rewards: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         rows = self.n_states * self.n_actions
@@ -79,6 +80,17 @@ class OutcomeTable:
             raise ValueError("an outcome leads outside the table's states")
         if self.start_states.shape != self.start_probabilities.shape or not np.isclose(self.start_probabilities.sum(), 1.0):
             raise ValueError("start_states need one probability each, summing to 1")
+        if self.opening_rewards is not None and self.opening_rewards.shape != (k,):
+            raise ValueError(f"opening_rewards must hold one reward per outcome ({k})")
+
+    @property
+    def first_step_rewards(self) -> np.ndarray:
+        """What each outcome pays on an episode's first step: ``opening_rewards`` where given, else ``rewards``.
+
+        A game whose opening hand is special but looks like a later one (Blackjack's natural)
+        pays differently there; every later step pays ``rewards``.
+        """
+        return self.rewards if self.opening_rewards is None else self.opening_rewards
 
     @classmethod
     def from_rows(
@@ -88,12 +100,23 @@ class OutcomeTable:
         rows: Mapping[tuple[int, int], Sequence[tuple[float, int, float, bool]]],
         start_states: Sequence[int],
         start_probabilities: Sequence[float],
+        opening_rewards: Mapping[tuple[int, int], Sequence[float]] | None = None,
     ) -> "OutcomeTable":
-        """From ``{(s, a): [(probability, next_state, reward, terminated), ...]}`` in sampling order."""
+        """From ``{(s, a): [(probability, next_state, reward, terminated), ...]}`` in sampling order.
+
+        ``opening_rewards`` replaces, for the rows it names, each outcome's reward on an
+        episode's first step (one reward per outcome, same order).
+        """
         offsets = np.zeros(n_states * n_actions + 1, dtype=np.int64)
         entries: list[tuple[float, int, float, bool]] = []
+        opening: list[float] = []
         for r in range(n_states * n_actions):
-            entries.extend(rows.get(divmod(r, n_actions), ()))
+            row = rows.get(divmod(r, n_actions), ())
+            entries.extend(row)
+            replaced = (opening_rewards or {}).get(divmod(r, n_actions))
+            if replaced is not None and len(replaced) != len(row):
+                raise ValueError(f"opening_rewards for row {divmod(r, n_actions)} need one reward per outcome ({len(row)})")
+            opening.extend(replaced if replaced is not None else [outcome[2] for outcome in row])
             offsets[r + 1] = len(entries)
         columns = list(zip(*entries)) if entries else [(), (), (), ()]
         return cls(
@@ -106,6 +129,7 @@ class OutcomeTable:
             terminated=np.asarray(columns[3], dtype=bool),
             start_states=np.asarray(start_states, dtype=np.int64),
             start_probabilities=np.asarray(start_probabilities, dtype=np.float64),
+            opening_rewards=np.asarray(opening, dtype=np.float64) if opening_rewards else None,
         )
 
     @classmethod
