@@ -103,7 +103,7 @@ def test_bad_input_fails_in_one_line_and_leaves_no_running_run(store, case, expe
 
 # A behaviour that acts like the target everywhere an episode can act, and differs only where
 # no action is ever taken: FrozenLake's goal (cell 15, terminal in the model), and Blackjack's
-# player sums of 22 and more (no model; start control lists every state an episode acts in).
+# player sums of 22 and more (busts: terminal in qtally's Blackjack table).
 COVERED_BUT_FOR_TERMINAL_STATES = {
     "frozen_lake_goal": ["env=frozen_lake_4x4", "gamma=0.9", "policy.rule=constant", "policy.action=1",
                          "behaviour.threshold=15", "behaviour.part=state"],

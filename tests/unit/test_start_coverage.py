@@ -5,8 +5,9 @@ initial values under ``variant=exploring_starts``, so the greedy policy acts the
 tie (Blackjack's old adapter skipped player sums 4..11 and stuck on all of them). For an
 environment with a model, the reachable non-terminal states come from the model under the
 uniform policy (any state some policy reaches is reached by the uniform one); for
-Blackjack, which has no model here, from 20,000 seeded uniform-random hands (all 280
-decision states show up by hand ~9,800 at this seed).
+Blackjack, independently of its model (qtally's own table, which the check should not
+trust), from 20,000 seeded uniform-random hands of the real game (all 280 decision states
+show up by hand ~9,800 at this seed).
 """
 
 from __future__ import annotations

@@ -57,7 +57,11 @@ class UniformDraws:
                 for start in range(0, skip, _BLOCK):
                     self.generator.random(min(_BLOCK, skip - start))
         self._block_start_state = self.generator.bit_generator.state
-        self._array = self.generator.random(size)
+        array = getattr(self, "_array", None)
+        if array is not None and array.shape[0] == size:
+            self.generator.random(out=array)  # refilled in place: a long run never allocates another block
+        else:
+            self._array = self.generator.random(size)
         self._block: list[float] | None = None
         self._position = 0
 

@@ -29,7 +29,7 @@ from ..envs.outcomes import OutcomeTable
 __all__ = ["ENGINE_CHOICES", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "variant_code", "time_limit_of"]
 
 ENGINE_CHOICES = ("auto", "gym", "compiled")
-_WINDOW = 1 << 13  # uniforms per kernel call and stream: 64 KiB, so windows never weigh on memory
+_WINDOW = 1 << 16  # uniforms per kernel call and stream (512 KiB): few refills, and a fixed size whatever the run length
 
 
 class EngineUnavailable(ValueError):

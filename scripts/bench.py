@@ -1,0 +1,372 @@
+"""Benchmark (not a test): qtally's engines against the limits of this machine, measured side by side.
+
+Four measurements, each in one run on the same machine, written as a Markdown table and a
+JSON file (``--out``, default ``bench-results/``):
+
+1. **gym path vs bare stepping.** ``Trainer`` with ``engine=gym`` and no recording, against
+   (a) a loop that replays the *same episodes* (the run's own starts and actions, the same
+   seeded environment, nothing else done) and (b) a loop that steps the same wrapped
+   environment with uniformly random actions. (a) is the overhead qtally adds to the
+   environment's own work; (b) is reported too, but a random policy plays episodes of
+   another length (on Blackjack it hits more), so it mixes overhead with a different workload.
+2. **compiled vs gym.** The compiled engine's steps per second against the gym path's, and
+   against a minimal compiled kernel written here (``qtally.engine.kernels.reference_kernel``:
+   epsilon-greedy steps on the same table, nothing recorded or learned), the limit of this
+   machine. Compilation is reported apart: cold (an empty numba cache) and warm (cached).
+3. **memory.** Peak resident memory of the main job (``qtally-train`` in a child process,
+   full MLflow recording) after 10^4 and 10^6 episodes.
+4. **recording.** Wall time of a run with full MLflow recording against the same run with
+   recording off, fixed cost aside; and the fixed cost of one run (imports, opening the
+   store, artifacts, the model) on its own.
+
+Every figure is a median over ``--repeats`` runs. ``--quick`` shrinks every run (the tests
+use it to check the script works); the README's figures come from the full mode::
+
+    python scripts/bench.py
+    python scripts/bench.py --quick --out /tmp/bench
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+ENVS = ("frozen_lake_8x8", "blackjack", "restock")
+VARIANTS = ("exploring_starts", "on_policy", "off_policy")
+# Episodes of one timed gym run (about a second each) and of one compiled run.
+GYM_EPISODES = {"frozen_lake_8x8": 3000, "blackjack": 30000, "restock": 3000}
+COMPILED_EPISODES = {"frozen_lake_8x8": 300_000, "blackjack": 3_000_000, "restock": 300_000}
+
+
+def _median_time(action, repeats: int, prepare=None) -> float:
+    """Median seconds of ``action(prepare())`` over ``repeats`` runs; ``prepare`` is not timed."""
+    times = []
+    for _ in range(repeats):
+        argument = prepare() if prepare else None
+        start = time.perf_counter()
+        action(argument) if prepare else action()
+        times.append(time.perf_counter() - start)
+    return statistics.median(times)
+
+
+def _timed_run(name: str, variant_name: str, episodes: int, engine: str, repeats: int):
+    """Median seconds of ``Trainer.run`` (construction untimed, after one untimed warm-up) and the last outcome."""
+    holder = {}
+    _trainer(name, variant_name, min(episodes, 10), engine).run()
+
+    def run(trainer):
+        holder["outcome"] = trainer.run()
+        holder["trainer"] = trainer
+
+    seconds = _median_time(run, repeats, prepare=lambda: _trainer(name, variant_name, episodes, engine))
+    return seconds, holder["outcome"], holder["trainer"]
+
+
+def _trainer(name: str, variant_name: str, episodes: int, engine: str, seed: int = 0):
+    from qtally.control.schedules import Constant
+    from qtally.control.variants import make_variant
+    from qtally.envs.factory import make_environment
+    from qtally.experiment import bundled_environment_spec
+    from qtally.trainer import Trainer, TrainingSettings
+
+    spec, truncation = bundled_environment_spec(name)
+    settings = TrainingSettings(episodes=episodes, seed=seed, log_every=100, eval_every=0, eval_episodes=1, truncation=truncation, engine=engine)
+    return Trainer(make_environment(spec), make_variant(variant_name, 1.0, variant_name != "off_policy", None), Constant(0.1), settings)
+
+
+def _steps(outcome, log_every: int = 100) -> float:
+    """Environment steps of a run, from the window means of ``episode_length_mean``."""
+    steps, previous = 0.0, 0
+    for episode, mean_length in outcome.history["episode_length_mean"]:
+        steps += mean_length * (episode - previous)
+        previous = episode
+    return steps
+
+
+def _recorded_episodes(name: str, variant_name: str, episodes: int):
+    """The starts and actions of a gym run (untimed), to replay in the bare loop."""
+    trainer = _trainer(name, variant_name, episodes, "gym")
+    played, source = [], trainer.episodes
+    original = source.play
+
+    def spy(choose, start_observation=None, first_action=None):
+        episode = original(choose, start_observation=start_observation, first_action=first_action)
+        played.append((start_observation, list(episode.actions)))
+        return episode
+
+    source.play = spy
+    trainer.run()
+    return trainer.environment.spec, trainer.state.streams.env_seed, played
+
+
+def _bare_replay(spec, env_seed: int, played) -> float:
+    """Seconds to step the same wrapped environment through the same episodes, nothing else."""
+    from qtally.envs.factory import make_environment
+
+    environment = make_environment(spec)
+    env, start_control = environment.env, environment.start_control
+    seed = env_seed
+    start = time.perf_counter()
+    for start_observation, actions in played:
+        if start_observation is not None:
+            start_control.reset_to(start_observation, seed=seed)
+        else:
+            env.reset(seed=seed)
+        seed = None
+        step = env.step
+        for action in actions:
+            step(action)
+    return time.perf_counter() - start
+
+
+def _bare_random(spec, episodes: int) -> tuple[float, int]:
+    """Seconds and steps of ``episodes`` episodes of uniformly random actions on the same wrapped environment."""
+    import numpy as np
+
+    from qtally.envs.factory import make_environment
+
+    env = make_environment(spec).env
+    actions = np.random.default_rng(0).integers(env.action_space.n, size=1 << 16).tolist()
+    steps, k = 0, 0
+    env.reset(seed=0)
+    start = time.perf_counter()
+    for _ in range(episodes):
+        env.reset()
+        done = False
+        while not done:
+            _, _, terminated, truncated, _ = env.step(actions[k])
+            k = (k + 1) & 0xFFFF
+            steps += 1
+            done = terminated or truncated
+    return time.perf_counter() - start, steps
+
+
+def gym_against_bare(scale: float, repeats: int) -> list[dict]:
+    rows = []
+    for name in ENVS:
+        episodes = max(10, int(GYM_EPISODES[name] * scale))
+        for variant_name in VARIANTS:
+            train_seconds, outcome, _ = _timed_run(name, variant_name, episodes, "gym", repeats)
+            steps = _steps(outcome)
+            spec, env_seed, played = _recorded_episodes(name, variant_name, episodes)
+            replay_seconds = statistics.median(_bare_replay(spec, env_seed, played) for _ in range(repeats))
+            random_runs = [_bare_random(spec, episodes) for _ in range(repeats)]
+            random_seconds = statistics.median(r[0] for r in random_runs)
+            random_steps = random_runs[0][1]
+            rows.append({
+                "env": name, "variant": variant_name, "episodes": episodes,
+                "train_steps_per_s": steps / train_seconds, "train_episodes_per_s": episodes / train_seconds,
+                "same_episodes_ratio": replay_seconds / train_seconds,
+                "random_actions_steps_ratio": (steps / train_seconds) / (random_steps / random_seconds),
+                "random_actions_episodes_ratio": (episodes / train_seconds) / (episodes / random_seconds),
+            })
+            print(f"  gym  {name:16s} {variant_name:17s} {rows[-1]['same_episodes_ratio']:.2f} of bare (same episodes)", flush=True)
+    return rows
+
+
+def compiled_against_gym(scale: float, repeats: int, gym_rows: list[dict]) -> list[dict]:
+    import numpy as np
+
+    from qtally.engine import kernels
+
+    gym_rate = {(r["env"], r["variant"]): r["train_steps_per_s"] for r in gym_rows}
+    rows = []
+    for name in ENVS:
+        episodes = max(100, int(COMPILED_EPISODES[name] * scale))
+        reference_rate = None
+        for variant_name in VARIANTS:
+            seconds, outcome, trainer = _timed_run(name, variant_name, episodes, "compiled", repeats)
+            steps = _steps(outcome)
+            if reference_rate is None:
+                table = trainer.episodes.table
+                q = np.zeros((table.n_states, table.n_actions))
+                kernels.reference_kernel(table.offsets, table.next_states, table.probabilities, table.terminated, table.start_states, table.start_probabilities, q, 1000, 0)
+                reference_seconds = _median_time(
+                    lambda: kernels.reference_kernel(table.offsets, table.next_states, table.probabilities, table.terminated, table.start_states, table.start_probabilities, q, int(steps), 0),
+                    repeats,
+                )
+                reference_rate = steps / reference_seconds
+            rate = steps / seconds
+            rows.append({
+                "env": name, "variant": variant_name, "episodes": episodes,
+                "compiled_steps_per_s": rate, "compiled_episodes_per_s": episodes / seconds,
+                "over_gym": rate / gym_rate[(name, variant_name)],
+                "reference_steps_per_s": reference_rate, "of_reference": rate / reference_rate,
+            })
+            print(f"  compiled {name:16s} {variant_name:17s} {rate / 1e6:.1f} M steps/s, {rows[-1]['over_gym']:.0f}x gym", flush=True)
+    return rows
+
+
+_COMPILE_PROBE = """
+import time, warnings
+warnings.filterwarnings("ignore")
+from qtally.control.schedules import Constant
+from qtally.control.variants import make_variant
+from qtally.envs.factory import EnvironmentSpec, make_environment
+from qtally.trainer import Trainer, TrainingSettings
+t = Trainer(make_environment(EnvironmentSpec(id="FrozenLake-v1", kwargs={"map_name": "8x8"})), make_variant("on_policy", 1.0, True, None), Constant(0.1), TrainingSettings(episodes=1, engine="compiled"))
+t.run()
+print(t.episodes.compile_seconds)
+"""
+
+
+def compile_cost() -> dict:
+    """Seconds the first kernel call takes with an empty numba cache, then with the cache it left."""
+    with tempfile.TemporaryDirectory(prefix="qtally-numba-") as cache:
+        env = dict(os.environ, NUMBA_CACHE_DIR=cache)
+        cold = float(subprocess.run([sys.executable, "-c", _COMPILE_PROBE], env=env, capture_output=True, text=True, check=True).stdout.split()[-1])
+        warm = float(subprocess.run([sys.executable, "-c", _COMPILE_PROBE], env=env, capture_output=True, text=True, check=True).stdout.split()[-1])
+    print(f"  compile: {cold:.1f} s cold, {warm:.2f} s from the cache", flush=True)
+    return {"cold_seconds": cold, "warm_seconds": warm}
+
+
+def _train_command(episodes: int, store: Path, extra: list[str]) -> list[str]:
+    launcher = "from qtally.cli.train import main; main()"  # qtally-train, run by this interpreter
+    return [sys.executable, "-c", launcher, f"episodes={episodes}", f"tracking.uri=sqlite:///{store}", "quiet=true", *extra]
+
+
+def peak_memory(counts: tuple[int, int]) -> dict:
+    """Peak resident memory (MiB) of the main job in a child process, full recording, for each episode count."""
+    result = {}
+    with tempfile.TemporaryDirectory(prefix="qtally-bench-") as scratch:
+        for episodes in counts:
+            process = subprocess.Popen(_train_command(episodes, Path(scratch) / f"m{episodes}.db", []), cwd=scratch, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+            _, status, usage = os.wait4(process.pid, 0)
+            process.returncode = os.waitstatus_to_exitcode(status)
+            if process.returncode != 0:
+                raise SystemExit(f"bench: qtally-train episodes={episodes} failed: {process.stderr.read().decode()[-500:]}")
+            result[str(episodes)] = usage.ru_maxrss / 1024.0  # Linux reports KiB
+            print(f"  memory: {episodes} episodes, peak {result[str(episodes)]:.0f} MiB", flush=True)
+    return result
+
+
+def recording_overhead(episodes: int, repeats: int) -> dict:
+    """Full MLflow recording against none, on the main job's defaults, and the fixed cost of a run."""
+    from hydra import compose, initialize_config_module
+
+    from qtally.config.schema import register_schema
+    from qtally.experiment import _exact_probes, prepare, run_training
+    from qtally.trainer import TrainingSettings, train
+
+    register_schema()
+    with tempfile.TemporaryDirectory(prefix="qtally-bench-") as scratch:
+        store = Path(scratch) / "mlflow.db"
+
+        def config(n: int):
+            with initialize_config_module(config_module="qtally.configs", version_base=None):
+                return compose(config_name="train", overrides=[f"episodes={n}", f"tracking.uri=sqlite:///{store}", "quiet=true"])
+
+        def recorded(n: int) -> float:
+            cfg = config(n)
+            start = time.perf_counter()
+            run_training(cfg)
+            return time.perf_counter() - start
+
+        def unrecorded(n: int) -> float:
+            cfg = config(n)
+            variant, schedule, environment, evaluation_environment = prepare(cfg)
+            probes, _, _ = _exact_probes(environment, cfg.gamma)
+            settings = TrainingSettings(episodes=n, seed=cfg.seed, log_every=cfg.log_every, eval_every=cfg.eval_every, eval_episodes=cfg.eval_episodes,
+                                        truncation=cfg.env.truncation, eval_seed=cfg.eval_seed, engine=cfg.engine)
+            start = time.perf_counter()
+            train(environment, variant, schedule, settings, evaluation_environment=evaluation_environment, probes=probes)
+            return time.perf_counter() - start
+
+        recorded(1)  # opens the store and warms every import
+        unrecorded(1)
+        # The fixed cost is what recording adds to a one-episode run (the store, the artifacts, the model).
+        fixed = statistics.median(recorded(1) - unrecorded(1) for _ in range(repeats))
+        full = statistics.median(recorded(episodes) for _ in range(repeats))
+        off = statistics.median(unrecorded(episodes) for _ in range(repeats))
+        start = time.perf_counter()
+        subprocess.run(_train_command(1, Path(scratch) / "cold.db", []), cwd=scratch, capture_output=True, check=True)
+        cold = time.perf_counter() - start
+    result = {"episodes": episodes, "recorded_seconds": full, "unrecorded_seconds": off, "fixed_seconds_in_process": fixed,
+              "fixed_seconds_new_process": cold, "overhead": (full - fixed - off) / off}
+    print(f"  recording: {result['overhead']:+.1%} of wall time, fixed cost {fixed:.1f} s in process, {cold:.1f} s from a new process", flush=True)
+    return result
+
+
+def versions() -> dict:
+    import gymnasium
+    import mlflow
+    import numba
+    import numpy
+
+    return {"python": platform.python_version(), "numpy": numpy.__version__, "numba": numba.__version__, "gymnasium": gymnasium.__version__,
+            "mlflow": mlflow.__version__, "cores": os.cpu_count(), "machine": platform.machine()}
+
+
+def markdown(results: dict) -> str:
+    v = results["versions"]
+    lines = [
+        f"Measured by `python scripts/bench.py{' --quick' if results['quick'] else ''}`: {v['cores']} cores, Python {v['python']}, numpy {v['numpy']}, "
+        f"numba {v['numba']}, gymnasium {v['gymnasium']}; medians of {results['repeats']} runs.",
+        "",
+        "| environment | variant | gym path, steps/s | of bare stepping (same episodes) | of bare stepping (random actions, steps/s) | compiled, steps/s | compiled over gym | compiled of minimal kernel |",
+        "|---|---|---:|---:|---:|---:|---:|---:|",
+    ]
+    compiled = {(r["env"], r["variant"]): r for r in results["compiled"]}
+    for row in results["gym"]:
+        c = compiled[(row["env"], row["variant"])]
+        lines.append(
+            f"| {row['env']} | {row['variant']} | {row['train_steps_per_s']:,.0f} | {row['same_episodes_ratio']:.2f} | {row['random_actions_steps_ratio']:.2f} "
+            f"| {c['compiled_steps_per_s']:,.0f} | {c['over_gym']:.0f}x | {c['of_reference']:.2f} |"
+        )
+    memory = results["memory"]
+    small, large = sorted(memory, key=int)
+    recording = results["recording"]
+    lines += [
+        "",
+        f"- Compilation: {results['compile']['cold_seconds']:.1f} s on a machine's first run, {results['compile']['warm_seconds']:.2f} s once cached.",
+        f"- Peak memory of the main job: {memory[small]:.0f} MiB after {int(small):,} episodes, {memory[large]:.0f} MiB after {int(large):,} "
+        f"({memory[large] / memory[small]:.2f}x).",
+        f"- Recording: {recording['overhead']:+.1%} of wall time for {recording['episodes']:,} episodes with full MLflow recording "
+        f"({recording['recorded_seconds']:.1f} s against {recording['unrecorded_seconds']:.1f} s unrecorded, fixed cost aside); "
+        f"fixed cost of recording a run {recording['fixed_seconds_in_process']:.1f} s (store, artifacts, model); a one-episode `qtally-train` from a new process "
+        f"takes {recording['fixed_seconds_new_process']:.1f} s in all (imports included).",
+    ]
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="qtally's engines against bare stepping and a minimal kernel, memory and recording cost.")
+    parser.add_argument("--quick", action="store_true", help="small runs, to check the script works (minutes become seconds)")
+    parser.add_argument("--repeats", type=int, default=None, help="timed runs per figure; the median is reported (default 3, quick 1)")
+    parser.add_argument("--out", default="bench-results", help="folder for bench.md and bench.json (default bench-results)")
+    args = parser.parse_args(argv)
+    repeats = args.repeats if args.repeats is not None else (1 if args.quick else 3)
+    if repeats < 1:
+        parser.error("--repeats must be at least 1")
+    out = Path(args.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        parser.error(f"--out {out}: cannot create it ({exc.strerror})")
+    warnings.filterwarnings("ignore")
+    scale = 0.02 if args.quick else 1.0
+    print("qtally benchmark" + (" (quick)" if args.quick else ""), flush=True)
+    results = {"quick": args.quick, "repeats": repeats, "versions": versions()}
+    results["gym"] = gym_against_bare(scale * 5 if args.quick else scale, repeats)
+    results["compiled"] = compiled_against_gym(scale / 10 if args.quick else scale, repeats, results["gym"])
+    results["compile"] = compile_cost()
+    results["memory"] = peak_memory((1_000, 20_000) if args.quick else (10_000, 1_000_000))
+    results["recording"] = recording_overhead(2_000 if args.quick else 100_000, repeats)
+    (out / "bench.json").write_text(json.dumps(results, indent=2))
+    (out / "bench.md").write_text(markdown(results))
+    print(markdown(results))
+    print(f"written: {out / 'bench.md'}, {out / 'bench.json'}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

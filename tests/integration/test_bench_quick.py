@@ -1,0 +1,38 @@
+"""The benchmark script works: its quick mode runs every measurement and writes its table.
+
+Which bug this catches: a measurement that crashes, a section missing from the JSON, a
+ratio that is not a positive finite number, a table that does not name every environment
+and variant. Timing itself is never asserted (benchmarks report, tests do not time).
+"""
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+SCRIPT = Path(__file__).parents[2] / "scripts" / "bench.py"
+
+
+def test_quick_benchmark_writes_its_table_and_json(tmp_path):
+    result = subprocess.run([sys.executable, str(SCRIPT), "--quick", "--out", str(tmp_path / "out")], capture_output=True, text=True, timeout=600)
+    assert result.returncode == 0, result.stderr[-2000:]
+    data = json.loads((tmp_path / "out" / "bench.json").read_text())
+    assert {"gym", "compiled", "compile", "memory", "recording", "versions"} <= data.keys()
+    assert len(data["gym"]) == len(data["compiled"]) == 9
+    for row in data["gym"]:
+        for key in ("same_episodes_ratio", "random_actions_steps_ratio", "train_steps_per_s"):
+            assert math.isfinite(row[key]) and row[key] > 0, (row, key)
+    for row in data["compiled"]:
+        assert row["over_gym"] > 1.0, row  # compiled code slower than Python would be a broken engine, not noise
+        assert 0 < row["of_reference"] and math.isfinite(row["of_reference"])
+    assert all(v > 0 for v in data["memory"].values()) and len(data["memory"]) == 2
+    table = (tmp_path / "out" / "bench.md").read_text()
+    for env in ("frozen_lake_8x8", "blackjack", "restock"):
+        assert table.count(f"| {env} |") == 3
+    assert "Peak memory" in table and "Recording" in table and "Compilation" in table
+
+
+def test_bench_refuses_a_bad_repeat_count(tmp_path):
+    result = subprocess.run([sys.executable, str(SCRIPT), "--repeats", "0", "--out", str(tmp_path)], capture_output=True, text=True, timeout=60)
+    assert result.returncode == 2 and "--repeats must be at least 1" in result.stderr
