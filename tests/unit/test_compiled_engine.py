@@ -79,6 +79,12 @@ def test_engines_agree_where_time_limits_and_the_step_cap_cut_episodes(variant, 
     _assert_same(*runs)
 
 
+@pytest.mark.parametrize("variant", ["exploring_starts", "off_policy"])
+def test_engines_agree_on_taxi(variant):
+    taxi = EnvironmentSpec(id="Taxi-v4", max_episode_steps=100)
+    _assert_same(*(_train(taxi, variant, True, Constant(0.2), engine, episodes=150, gamma=1.0) for engine in ("gym", "compiled")))
+
+
 def test_a_checkpoint_moves_between_engines(tmp_path):
     """Pause compiled, save, resume on the gym path: the same table as one uninterrupted run."""
     schedule = GlieEpisodes(10.0, 0.02)
