@@ -33,6 +33,8 @@ CASES = [
     (["env.max_episode_steps=-3"], ["env.max_episode_steps=-3", "positive number of steps"]),
     (["env.step_cap=0"], ["env.step_cap=0", "positive number of steps", "null"]),
     (["env.step_cap=-10"], ["env.step_cap=-10", "positive number of steps"]),
+    (["engine=fast"], ["engine='fast'", "auto, gym, compiled"]),
+    (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),
 ]
 
 # qtally-evaluate: the same checks reach it through its own validation, plus its own rules.

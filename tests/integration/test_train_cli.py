@@ -32,6 +32,9 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     run_id = run.info.run_id
     assert run_id in result.stdout and "mlflow ui --backend-store-uri sqlite:///mlflow.db" in result.stdout
     assert run.info.status == "FINISHED"
+    # engine=auto took the compiled engine (FrozenLake lists its outcomes) and said so.
+    assert "engine:       compiled (FrozenLake-v1 lists its outcomes (16 states), compiled in" in result.stdout
+    assert run.data.tags["qtally.engine"].startswith("compiled: ") and client.get_metric_history(run_id, "engine_compile_seconds")
     # Params: the flattened resolved config.
     assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
     assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.kind"] == "glie_episode"
