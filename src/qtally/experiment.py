@@ -8,8 +8,10 @@ closes the run as FINISHED, or FAILED/KILLED if anything goes wrong on the way.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import os
+import signal
 import tempfile
 import warnings
 from dataclasses import dataclass
@@ -29,7 +31,7 @@ from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tr
 from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
 from .control.truncation import resolve_step_cap
-from .trainer import TrainingOutcome, TrainingSettings, train
+from .trainer import Trainer, TrainingOutcome, TrainingSettings, TrainingStopped
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
 
@@ -151,7 +153,13 @@ def run_name(cfg: DictConfig) -> str:
 
 
 def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSummary:
-    """Train once and record the run; raises :class:`QtallyError` for input the user can fix."""
+    """Train once and record the run; raises :class:`QtallyError` for input the user can fix.
+
+    With ``resume=<run id>`` the run is continued from its last checkpoint instead (:func:`resume_training`).
+    """
+    if cfg.get("resume"):
+        return resume_training(cfg, progress_factory, announce)
+    _check_checkpoint_dir(cfg)
     variant, schedule, environment, evaluation_environment = prepare(cfg)
     from mlflow.tracking import MlflowClient
 
@@ -183,7 +191,106 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
     return RunSummary(run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=uri, final_evaluation=outcome.final_evaluation, outcome=outcome)
 
 
-def _train_and_record(cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory) -> TrainingOutcome:
+def _check_checkpoint_dir(cfg: DictConfig) -> None:
+    """A checkpoint that cannot be written would be found out only when it is needed: try now."""
+    folder = Path(cfg.checkpoint_dir)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        with tempfile.NamedTemporaryFile(dir=folder, prefix=".write-check-"):
+            pass
+    except OSError as exc:
+        raise QtallyError(f"checkpoint_dir={cfg.checkpoint_dir!r} cannot be written ({exc.strerror}); give a folder you can write to") from None
+
+
+def checkpoint_path(cfg: DictConfig, run_id: str) -> Path:
+    return Path(cfg.checkpoint_dir) / run_id / "trainer_state.npz"
+
+
+def resume_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSummary:
+    """Continue run ``cfg.resume`` from its last checkpoint, with the config it was started with.
+
+    The checkpoint is the local file under ``checkpoint_dir`` if there is one, else the run's
+    ``checkpoint/trainer_state.npz`` artifact. Metrics the store already holds for a step are
+    not sent again, so the episodes replayed after the checkpoint leave each step once.
+    """
+    import mlflow
+    from mlflow.tracking import MlflowClient
+
+    from .control.trainer_state import TrainerState, TrainerStateError
+    from .cli.console import quiet_libraries
+
+    quiet_libraries()
+    run_id = str(cfg.resume)
+    uri = resolve_tracking_uri(cfg.tracking.uri)
+    mlflow.set_tracking_uri(uri)
+    client = MlflowClient(uri)
+    try:
+        run = client.get_run(run_id)
+    except Exception:
+        raise QtallyError(f"resume={run_id}: no run with this id in {uri}; give a run id from this store, or its tracking.uri") from None
+    if run.info.status == "FINISHED":
+        raise QtallyError(f"resume={run_id}: the run already finished; there is nothing to continue")
+    with tempfile.TemporaryDirectory(prefix="qtally-resume-") as scratch:
+        try:
+            run_cfg = OmegaConf.load(client.download_artifacts(run_id, "config/resolved_config.yaml", scratch))
+        except Exception:
+            raise QtallyError(f"resume={run_id}: the run has no recorded config (config/resolved_config.yaml), so it cannot be continued") from None
+        OmegaConf.update(run_cfg, "resume", None, force_add=True)
+        OmegaConf.update(run_cfg, "checkpoint_dir", cfg.checkpoint_dir, force_add=True)
+        OmegaConf.update(run_cfg, "tracking.uri", uri, force_add=True)
+        OmegaConf.update(run_cfg, "quiet", cfg.quiet, force_add=True)
+        local = checkpoint_path(run_cfg, run_id)
+        if not local.exists():
+            try:
+                local = Path(client.download_artifacts(run_id, "checkpoint/trainer_state.npz", scratch))
+            except Exception:
+                raise QtallyError(
+                    f"resume={run_id}: no checkpoint, neither {checkpoint_path(run_cfg, run_id)} nor the run's checkpoint/ artifact "
+                    "(it stopped before its first checkpoint; set checkpoint_every for the next run)"
+                ) from None
+        try:
+            state = TrainerState.load(local)
+        except TrainerStateError as exc:
+            raise QtallyError(f"resume={run_id}: {exc}") from None
+    _check_checkpoint_dir(run_cfg)
+    variant, schedule, environment, evaluation_environment = prepare(run_cfg)
+    experiment = client.get_experiment(run.info.experiment_id)
+    mlflow.set_experiment(experiment_id=experiment.experiment_id)
+    probes, exact, _ = _exact_probes(environment, run_cfg.gamma) if run_cfg.exact else ((), None, "exact=false")
+    already = {(key, metric.step) for key in run.data.metrics for metric in client.get_metric_history(run_id, key)}
+    try:
+        with recorded_run(run_cfg, None, {"qtally.resumed_at_episode": str(state.episode)}, resume_run_id=run_id):
+            if announce:
+                announce(run_id)
+            outcome = _train_and_record(run_cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory, state=state, already_logged=already)
+    finally:
+        environment.close()
+        evaluation_environment.close()
+    return RunSummary(run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=uri, final_evaluation=outcome.final_evaluation, outcome=outcome)
+
+
+@contextlib.contextmanager
+def _stop_on_signals(trainer: Trainer):
+    """SIGINT and SIGTERM stop training after the current episode, with a checkpoint; a second SIGINT stops at once."""
+    def request(signum, frame):
+        if trainer.stop_requested and signum == signal.SIGINT:
+            raise KeyboardInterrupt
+        trainer.request_stop(signal.Signals(signum).name)
+
+    previous = {}
+    try:
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            previous[signum] = signal.signal(signum, request)
+    except ValueError:  # not the main thread (some launchers): signals keep their default meaning
+        pass
+    try:
+        yield
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+
+
+def _train_and_record(cfg, client, run_id, variant, schedule, environment, evaluation_environment, probes, exact, progress_factory, state=None, already_logged=None) -> TrainingOutcome:
     """Inside the open run: train with the batching recorder, then write the artifacts and the model."""
     import mlflow
 
@@ -193,7 +300,17 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     from .tracking.mlflow_sink import MlflowRecorder
     from .tracking.policy_model import log_policy_model
 
-    recorder = MlflowRecorder(client, run_id)
+    if state is None:
+        with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
+            log_config(cfg, Path(scratch))  # first, so a run stopped early can be resumed with its config
+    recorder = MlflowRecorder(client, run_id, already_logged=already_logged)
+
+    def checkpoint(trainer: Trainer) -> Path:
+        path = trainer.state.save(checkpoint_path(cfg, run_id))
+        with contextlib.suppress(Exception):  # the local file is the checkpoint; the artifact is a copy where the store can take it
+            client.log_artifact(run_id, str(path), "checkpoint")
+        return path
+
     settings = TrainingSettings(
         episodes=cfg.episodes,
         seed=cfg.seed,
@@ -206,21 +323,30 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         step_cap=cfg.env.step_cap,
         eval_seed=cfg.eval_seed,
         engine=cfg.engine,
+        checkpoint_every=cfg.get("checkpoint_every", 0),
     )
     progress = progress_factory(cfg.episodes) if progress_factory else None
+    trainer = Trainer(
+        environment,
+        variant,
+        schedule,
+        settings,
+        recorder=recorder,
+        evaluation_environment=evaluation_environment,
+        probes=probes,
+        progress=progress,
+        facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
+        fallback=policy_fallback(cfg),
+        state=state,
+        checkpoint=checkpoint,
+    )
     try:
-        outcome = train(
-            environment,
-            variant,
-            schedule,
-            settings,
-            recorder=recorder,
-            evaluation_environment=evaluation_environment,
-            probes=probes,
-            progress=progress,
-            facts={"gamma": cfg.gamma, "variant": cfg.variant.name, "seed": cfg.seed},
-            fallback=policy_fallback(cfg),
-        )
+        with _stop_on_signals(trainer):
+            outcome = trainer.run()
+    except TrainingStopped as stopped:
+        where = f"its checkpoint: {stopped.checkpoint}; " if stopped.checkpoint else ""
+        stopped.hint = f"stopped by {getattr(trainer, 'stop_reason', 'a stop request')} at episode {stopped.episode}; the run was closed as KILLED; {where}continue with: qtally-train resume={run_id}"
+        raise
     finally:
         if progress is not None:
             progress.close()
@@ -230,7 +356,6 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         mlflow.log_metric("engine_compile_seconds", outcome.compile_seconds)
     with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
         scratch_dir = Path(scratch)
-        log_config(cfg, scratch_dir)
         policy_path = outcome.artifact.save(scratch_dir / "policy.npz")
         mlflow.log_artifact(str(policy_path), "policy_file")
         mlflow.log_artifact(str(_write_q_table_csv(environment, outcome, scratch_dir / "q_table.csv")), "tables")

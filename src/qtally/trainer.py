@@ -43,6 +43,15 @@ __all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATIO
 Probe = Callable[[np.ndarray], Mapping[str, float]]
 
 
+class TrainingStopped(KeyboardInterrupt):
+    """Training stopped on request (SIGINT, SIGTERM) between two episodes, after a checkpoint."""
+
+    def __init__(self, episode: int, checkpoint: Path | None):
+        super().__init__(f"stopped at episode {episode}")
+        self.episode = episode
+        self.checkpoint = checkpoint
+
+
 class ProgressSink(Protocol):
     def update(self, episodes: int, status: Mapping[str, float]) -> None: ...
 
@@ -59,6 +68,7 @@ class TrainingSettings:
     initial_value: float = 0.0
     step_cap: int | None = None  # None: derived from the table size (control/truncation.py)
     engine: str = "auto"  # auto | gym | compiled (qtally.engine.compiled)
+    checkpoint_every: int = 0  # 0: checkpoints only when stopped (and at the end, if a checkpoint hook is given)
     eval_seed: int | None = None  # None: the evaluation stream of ``seed``; a number: shared by every run that names it
 
 
@@ -92,6 +102,7 @@ class Trainer:
         facts: Mapping[str, object] | None = None,
         state: TrainerState | None = None,
         fallback: Fallback | None = None,
+        checkpoint: Callable[["Trainer"], Path | None] | None = None,
     ):
         check_truncation(settings.truncation)
         self.environment = environment
@@ -103,6 +114,8 @@ class Trainer:
         self.progress = progress
         self.facts = dict(facts or {})
         self.fallback = fallback  # what snapshots and the final policy do in states training never reached
+        self.checkpoint = checkpoint  # writes the state somewhere safe (the experiment layer: a file and a run artifact)
+        self.stop_requested = False
         self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
         self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
         self.engine, self.engine_reason, self.episodes = choose_engine(settings.engine, environment, variant, schedule, self.step_cap, self.start_states)
@@ -218,11 +231,23 @@ class Trainer:
         state.capped_episodes += played.capped
         state.window.add(played.total_reward, played.length, epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)
 
+    def request_stop(self, reason: str = "a stop request") -> None:
+        """Stop after the episode being played: checkpoint, then raise :class:`TrainingStopped` (safe from a signal handler)."""
+        self.stop_requested = True
+        self.stop_reason = reason
+
+    def _write_checkpoint(self) -> Path | None:
+        if self.checkpoint is None:
+            return None
+        self.recorder.flush()  # what the checkpoint says was logged must be in the store
+        self.state.environment_rng = self.episodes.rng_state()
+        return self.checkpoint(self)
+
     def _next_boundary(self, stop: int) -> int:
         """The next episode after which something is logged, evaluated or saved (or ``stop``)."""
         episode, settings = self.state.episode, self.settings
         boundary = min(stop, (episode // settings.log_every + 1) * settings.log_every)
-        for every in (settings.eval_every, settings.snapshot_every):
+        for every in (settings.eval_every, settings.snapshot_every, settings.checkpoint_every):
             if every:
                 boundary = min(boundary, (episode // every + 1) * every)
         return boundary
@@ -232,7 +257,7 @@ class Trainer:
         if self.engine == "compiled":
             self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode)
             return
-        while self.state.episode < episode:
+        while self.state.episode < episode and not self.stop_requested:
             self.play_and_learn()
 
     def save_state(self, path) -> Path:
@@ -255,6 +280,8 @@ class Trainer:
             while state.episode < stop:
                 self._play_until(self._next_boundary(stop))
                 episode = state.episode
+                if self.stop_requested and episode < settings.episodes:
+                    raise TrainingStopped(episode, self._write_checkpoint())
                 last = episode == settings.episodes
                 if episode % settings.log_every == 0 or last:
                     metrics = state.window.metrics()
@@ -269,6 +296,8 @@ class Trainer:
                     path = self.snapshot().save(snapshot_dir / f"policy-{episode:09d}.npz")
                     self.recorder.log_file(path, "snapshots")
                     path.unlink()
+                if settings.checkpoint_every and (episode % settings.checkpoint_every == 0 or last):
+                    self._write_checkpoint()
             state.environment_rng = self.episodes.rng_state()
             self.recorder.flush()
         finally:

@@ -65,8 +65,9 @@ def run_reporting_errors(program: str, action: Callable[[], T]) -> T:
         return action()
     except QtallyError as exc:
         fail(program, str(exc))
-    except KeyboardInterrupt:
-        fail(program, "interrupted; the run was closed as KILLED", code=130)
+    except KeyboardInterrupt as exc:
+        hint = getattr(exc, "hint", None)  # a graceful stop says where its checkpoint is and how to continue
+        fail(program, hint or "interrupted; the run was closed as KILLED", code=143 if "SIGTERM" in (hint or "") else 130)
     except Exception as exc:  # unexpected: one line by default, the traceback on request
         if os.environ.get("QTALLY_DEBUG"):
             raise

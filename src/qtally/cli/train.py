@@ -124,6 +124,8 @@ def main() -> None:
     if choice_problem:
         fail(PROGRAM, choice_problem)
     if is_sweep(sys.argv[1:]):
+        if any(argument.startswith("resume=") for argument in sys.argv[1:]):
+            fail(PROGRAM, "resume=<run id> continues one run; a sweep cannot be resumed yet (run its unfinished jobs again, each with resume=<its run id>)")
         problem = first_bad_job(sys.argv[1:])
         if problem:
             fail(PROGRAM, f"{problem} (nothing was started)")

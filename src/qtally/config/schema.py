@@ -89,6 +89,9 @@ class TrainConfig:
     initial_value: float = 0.0
     exact: bool = True
     engine: str = "auto"  # auto | gym | compiled: how episodes are played (qtally.engine.compiled)
+    checkpoint_every: int = 0  # episodes between checkpoints (0: only when stopped and at the end)
+    checkpoint_dir: str = "checkpoints"  # local checkpoints go to <checkpoint_dir>/<run id>/trainer_state.npz
+    resume: Optional[str] = None  # a run id: continue that run from its last checkpoint, with its own config
     rollout_animation: bool = True
     quiet: bool = False
 

@@ -100,6 +100,6 @@ def validate(cfg: DictConfig) -> None:
     for key in ("log_every", "eval_episodes"):
         if cfg[key] <= 0:
             raise ConfigError(f"{key}={cfg[key]} must be positive")
-    for key in ("eval_every", "snapshot_every"):
+    for key in ("eval_every", "snapshot_every", "checkpoint_every"):
         if cfg[key] < 0:
             raise ConfigError(f"{key}={cfg[key]} must be 0 (off) or a positive episode count")

@@ -18,16 +18,21 @@ __all__ = ["MlflowRecorder"]
 
 
 class MlflowRecorder:
-    def __init__(self, client: MlflowClient, run_id: str, batch_size: int = 1000):
+    def __init__(self, client: MlflowClient, run_id: str, batch_size: int = 1000, already_logged: set[tuple[str, int]] | None = None):
         self.client = client
         self.run_id = run_id
         self.batch_size = min(int(batch_size), 1000)
         self._queue: list[Metric] = []
         self.batches_sent = 0
+        # A resumed run replays the episodes after its checkpoint: steps the store already holds are not sent twice.
+        self.already_logged = already_logged or set()
 
     def log_metrics(self, metrics: Mapping[str, float], step: int) -> None:
         timestamp = int(time.time() * 1000)
-        self._queue.extend(Metric(key=name, value=float(value), timestamp=timestamp, step=int(step)) for name, value in metrics.items())
+        skip = self.already_logged
+        self._queue.extend(
+            Metric(key=name, value=float(value), timestamp=timestamp, step=int(step)) for name, value in metrics.items() if (name, int(step)) not in skip
+        )
         if len(self._queue) >= self.batch_size:
             self.flush()
 

@@ -80,14 +80,18 @@ def flatten_config(node, prefix: str = "") -> dict[str, str]:
 
 
 @contextlib.contextmanager
-def recorded_run(cfg: DictConfig, run_name: str | None, tags: Mapping[str, str]) -> Iterator[str]:
-    """Open a run with the config as params; yield its id; close it with the right status."""
+def recorded_run(cfg: DictConfig, run_name: str | None, tags: Mapping[str, str], resume_run_id: str | None = None) -> Iterator[str]:
+    """Open a run with the config as params (or reopen ``resume_run_id``, whose params exist); yield its id; close it with the right status."""
     import mlflow
 
-    run = mlflow.start_run(run_name=run_name, tags=dict(tags))
+    if resume_run_id:
+        run = mlflow.start_run(run_id=resume_run_id)
+        mlflow.set_tags(dict(tags))
+    else:
+        run = mlflow.start_run(run_name=run_name, tags=dict(tags))
     status = "FAILED"
     try:
-        items = list(flatten_config(OmegaConf.to_container(cfg, resolve=True)).items())
+        items = [] if resume_run_id else list(flatten_config(OmegaConf.to_container(cfg, resolve=True)).items())
         for i in range(0, len(items), 100):
             mlflow.log_params(dict(items[i : i + 100]))
         yield run.info.run_id
