@@ -27,6 +27,8 @@ def test_ctrl_c_closes_the_run_as_killed(tmp_path):
     _, stderr = process.communicate(timeout=120)
     assert process.returncode == 130
     lines = [line for line in stderr.splitlines() if line.strip()]
-    assert lines == ["qtally-train: error: interrupted; the run was closed as KILLED"]
+    # One line: where training stopped, the KILLED status, the checkpoint it left and how to continue.
+    assert len(lines) == 1 and lines[0].startswith("qtally-train: error: stopped by SIGINT at episode "), lines
+    assert "the run was closed as KILLED; its checkpoint: checkpoints/" in lines[0] and "continue with: qtally-train resume=" in lines[0]
     runs = client.search_runs([experiment_id])
     assert [r.info.status for r in runs] == ["KILLED"]
