@@ -34,6 +34,7 @@ CASES = [
     (["env.step_cap=0"], ["env.step_cap=0", "positive number of steps", "null"]),
     (["env.step_cap=-10"], ["env.step_cap=-10", "positive number of steps"]),
     (["engine=fast"], ["engine='fast'", "auto, gym, compiled"]),
+
     (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),
 ]
 
@@ -88,3 +89,21 @@ def test_bad_evaluate_input_fails_cleanly(run_cli, tmp_path, arguments, words):
     store = tmp_path / "mlflow.db"
     result = run_cli("qtally-evaluate", "episodes=50", f"tracking.uri=sqlite:///{store}", *arguments)
     _assert_clean_failure(result, "qtally-evaluate", words, store)
+
+
+STORE_CASES = [
+    # A port where no server listens: refused by the health probe (3 tries, about 11 s at most), not after minutes of retries.
+    ("http://127.0.0.1:9", ["tracking.uri='http://127.0.0.1:9'", "no MLflow server answered", "mlflow server --host 127.0.0.1"]),
+    ("some/folder", ["tracking.uri='some/folder' is a folder", "sqlite:///mlflow.db"]),
+]
+
+
+@pytest.mark.parametrize("uri, words", STORE_CASES, ids=[uri for uri, _ in STORE_CASES])
+def test_a_store_that_cannot_be_used_is_refused_in_seconds(run_cli, tmp_path, uri, words):
+    import time
+
+    started = time.monotonic()
+    result = run_cli("qtally-train", "episodes=50", f"tracking.uri={uri}")
+    assert time.monotonic() - started < 60  # the probe's bound plus start-up; MLflow's own retries took 248 s
+    _assert_clean_failure(result, "qtally-train", words, tmp_path / "mlflow.db")
+    assert not (tmp_path / "some").exists()

@@ -21,9 +21,46 @@ __all__ = ["DEFAULT_TRACKING_URI", "resolve_tracking_uri", "open_experiment", "r
 DEFAULT_TRACKING_URI = "sqlite:///mlflow.db"
 
 
+# A server that does not answer is found out in seconds, not minutes: the health probe below
+# tries PROBE_ATTEMPTS times with PROBE_TIMEOUT seconds each, PROBE_PAUSE apart (at most about
+# 11 s in all), and MLflow's own calls during a run retry 3 times with a backoff of 1 s.
+PROBE_ATTEMPTS, PROBE_TIMEOUT, PROBE_PAUSE = 3, 3.0, 1.0
+_MLFLOW_RETRY_DEFAULTS = {"MLFLOW_HTTP_REQUEST_MAX_RETRIES": "3", "MLFLOW_HTTP_REQUEST_BACKOFF_FACTOR": "1", "MLFLOW_HTTP_REQUEST_TIMEOUT": "20"}
+
+
 def resolve_tracking_uri(configured: str | None) -> str:
-    """``tracking.uri``, else ``$MLFLOW_TRACKING_URI``, else SQLite in the working directory."""
-    return configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
+    """``tracking.uri``, else ``$MLFLOW_TRACKING_URI``, else SQLite in the working directory; checked (:func:`check_tracking_uri`)."""
+    uri = configured or os.environ.get("MLFLOW_TRACKING_URI") or DEFAULT_TRACKING_URI
+    check_tracking_uri(uri)
+    return uri
+
+
+def check_tracking_uri(uri: str) -> None:
+    """Refuse, in one line and within seconds, a store qtally cannot use: a folder, or a server that does not answer."""
+    import time
+    import urllib.error
+    import urllib.request
+
+    fix = "start a server on this machine (mlflow server --host 127.0.0.1 --port 5000), or leave tracking.uri unset for the SQLite file mlflow.db here"
+    scheme = uri.split("://", 1)[0].lower() if "://" in uri else ""
+    if scheme in ("", "file"):
+        raise QtallyError(f"tracking.uri={uri!r} is a folder (MLflow's file store, which qtally does not write); use a database file, sqlite:///mlflow.db, or a server, http://127.0.0.1:5000")
+    if scheme not in ("http", "https"):
+        return
+    for key, value in _MLFLOW_RETRY_DEFAULTS.items():
+        os.environ.setdefault(key, value)
+    started, reason = time.monotonic(), ""
+    for attempt in range(PROBE_ATTEMPTS):
+        try:
+            with urllib.request.urlopen(uri.rstrip("/") + "/health", timeout=PROBE_TIMEOUT):
+                return
+        except urllib.error.HTTPError:
+            return  # something answers; MLflow's own calls will say what is wrong with it
+        except (urllib.error.URLError, OSError, ValueError) as exc:
+            reason = str(getattr(exc, "reason", exc))
+        if attempt + 1 < PROBE_ATTEMPTS:
+            time.sleep(PROBE_PAUSE)
+    raise QtallyError(f"tracking.uri={uri!r}: no MLflow server answered ({PROBE_ATTEMPTS} tries in {time.monotonic() - started:.0f} s: {reason}); {fix}")
 
 
 @contextlib.contextmanager
