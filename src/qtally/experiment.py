@@ -269,6 +269,25 @@ def resume_training(cfg: DictConfig, progress_factory=None, announce=None) -> Ru
     return RunSummary(run_id=run_id, experiment_id=experiment.experiment_id, tracking_uri=uri, final_evaluation=outcome.final_evaluation, outcome=outcome)
 
 
+STORE_RETRIES, STORE_RETRY_PAUSE = 6, 5.0  # at the end of a run, wait up to about 30 s for a store that went away
+
+
+def _send_or_keep(recorder, trainer: Trainer, cfg: DictConfig, run_id: str) -> None:
+    """Send what is still queued; if the store stays away, keep the whole record in a checkpoint and say how to send it."""
+    import time
+
+    for attempt in range(STORE_RETRIES):
+        recorder.flush()
+        if not recorder.unsent:
+            return
+        time.sleep(STORE_RETRY_PAUSE)
+    path = trainer.state.save(checkpoint_path(cfg, run_id))
+    raise QtallyError(
+        f"the tracking store stopped answering ({recorder.last_error}); {recorder.unsent} metric values were not sent. "
+        f"The run's whole record is in {path}: when the store answers again, qtally-train resume={run_id} sends what is missing and finishes the run"
+    )
+
+
 @contextlib.contextmanager
 def _stop_on_signals(trainer: Trainer):
     """SIGINT and SIGTERM stop training after the current episode, with a checkpoint; a second SIGINT stops at once."""
@@ -340,9 +359,14 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         state=state,
         checkpoint=checkpoint,
     )
+    if state is not None:  # a resumed run: what the checkpoint holds but the store lacks is sent first
+        for name, series in state.history.items():
+            for step, value in series:
+                recorder.log_metrics({name: value}, step)
     try:
         with _stop_on_signals(trainer):
             outcome = trainer.run()
+            _send_or_keep(recorder, trainer, cfg, run_id)
     except TrainingStopped as stopped:
         where = f"its checkpoint: {stopped.checkpoint}; " if stopped.checkpoint else ""
         stopped.hint = f"stopped by {getattr(trainer, 'stop_reason', 'a stop request')} at episode {stopped.episode}; the run was closed as KILLED; {where}continue with: qtally-train resume={run_id}"

@@ -131,12 +131,13 @@ def test_sigterm_stops_with_a_checkpoint_as_killed_then_resumes_to_finished(tmp_
     [
         (["resume=0123456789abcdef"], ["resume=0123456789abcdef", "no run with this id"]),
         (["-m", "seed=1,2", "resume=abc"], ["resume=<run id> continues one run", "sweep cannot be resumed"]),
-        (["checkpoint_dir=/proc/qtally-cannot-write"], ["checkpoint_dir='/proc/qtally-cannot-write'", "cannot be written"]),
-        (["checkpoint_every=-1"], ["checkpoint_every=-1", "0 (off) or a positive"]),
+        (["resume=abc", "seed=3"], ["resume=<run id> continues the run with the config it was started with", "drop seed=3"]),
+        (["checkpoint_dir=/proc/qtally-cannot-write", "episodes=10"], ["checkpoint_dir='/proc/qtally-cannot-write'", "cannot be written"]),
+        (["checkpoint_every=-1", "episodes=10"], ["checkpoint_every=-1", "0 (off) or a positive"]),
     ],
 )
 def test_bad_resume_and_checkpoint_input_fails_in_one_line(tmp_path, arguments, words):
-    result = subprocess.run(_command(*arguments, "episodes=10"), cwd=tmp_path, env=_env(), capture_output=True, text=True, timeout=300)
+    result = subprocess.run(_command(*arguments), cwd=tmp_path, env=_env(), capture_output=True, text=True, timeout=300)
     lines = [line for line in result.stderr.splitlines() if line.strip()]
     assert result.returncode != 0 and len(lines) == 1 and "Traceback" not in result.stderr, result.stderr
     for word in words:

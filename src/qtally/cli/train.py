@@ -110,6 +110,10 @@ def _one_sweep_run(cfg: DictConfig) -> float:
     return float("nan")
 
 
+# What a resumed run takes from the command line; everything else comes from the run itself.
+_RESUME_KEYS = ("resume", "tracking.uri", "checkpoint_dir", "quiet")
+
+
 def main() -> None:
     from ..config.schema import EnvConfig, ScheduleConfig, TrainConfig, VariantConfig
     from ..sweep_check import first_bad_job, is_sweep
@@ -123,6 +127,10 @@ def main() -> None:
     choice_problem = first_bad_choice(sys.argv[1:], ("env", "variant", "schedule"))
     if choice_problem:
         fail(PROGRAM, choice_problem)
+    if any(argument.startswith("resume=") for argument in sys.argv[1:]) and not is_sweep(sys.argv[1:]):
+        ignored = [a for a in sys.argv[1:] if a.split("=", 1)[0].lstrip("+~") not in _RESUME_KEYS]
+        if ignored:
+            fail(PROGRAM, f"resume=<run id> continues the run with the config it was started with; drop {' '.join(ignored)} (only {', '.join(_RESUME_KEYS)} apply)")
     if is_sweep(sys.argv[1:]):
         if any(argument.startswith("resume=") for argument in sys.argv[1:]):
             fail(PROGRAM, "resume=<run id> continues one run; a sweep cannot be resumed yet (run its unfinished jobs again, each with resume=<its run id>)")

@@ -3,6 +3,13 @@
 One synchronous metric call costs milliseconds on a SQLite store, longer than an
 episode, so :class:`MlflowRecorder` queues metrics and sends them with
 ``log_batch`` (at most ``batch_size`` per call) when the queue fills and on ``flush``.
+
+A store that stops answering does not stop training: a batch that cannot be sent stays
+queued and is sent, once, at a later flush; a snapshot that cannot be stored is counted
+and skipped (the checkpoints keep the whole state locally). :meth:`MlflowRecorder.unsent`
+says what is still waiting; the experiment layer turns a store that never came back into
+one line naming the local checkpoint, from which ``qtally-train resume=<run id>`` sends
+what is missing.
 """
 
 from __future__ import annotations
@@ -37,10 +44,28 @@ class MlflowRecorder:
             self.flush()
 
     def log_file(self, local_path: Path, artifact_dir: str | None = None) -> None:
-        self.client.log_artifact(self.run_id, str(local_path), artifact_dir)
+        try:
+            self.client.log_artifact(self.run_id, str(local_path), artifact_dir)
+        except Exception as exc:  # the store is away: the file is a snapshot, the checkpoints hold the state
+            self.files_lost += 1
+            self.last_error = f"{type(exc).__name__}: {str(exc).splitlines()[0][:200] if str(exc) else ''}"
+
+    files_lost = 0
+    last_error = ""
 
     def flush(self) -> None:
+        """Send the queue in batches; a batch the store refuses stays queued for the next flush."""
         while self._queue:
-            chunk, self._queue = self._queue[: self.batch_size], self._queue[self.batch_size :]
-            self.client.log_batch(self.run_id, metrics=chunk)
+            chunk = self._queue[: self.batch_size]
+            try:
+                self.client.log_batch(self.run_id, metrics=chunk)
+            except Exception as exc:
+                self.last_error = f"{type(exc).__name__}: {str(exc).splitlines()[0][:200] if str(exc) else ''}"
+                return
+            self._queue = self._queue[len(chunk) :]
             self.batches_sent += 1
+
+    @property
+    def unsent(self) -> int:
+        """Metric values still waiting for the store."""
+        return len(self._queue)

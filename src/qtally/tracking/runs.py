@@ -141,7 +141,11 @@ def recorded_run(cfg: DictConfig, run_name: str | None, tags: Mapping[str, str],
             mlflow.set_tag("qtally.failure", f"{type(exc).__name__}: {first_line(exc)}"[:500])
         raise
     finally:
-        mlflow.end_run(status=status)
+        try:
+            mlflow.end_run(status=status)
+        except Exception as exc:  # the store went away: the run stays open there; say so unless another error is on its way
+            if status == "FINISHED":
+                raise QtallyError(f"the run could not be closed in the tracking store ({first_line(exc)}); it stays RUNNING there until qtally-train resume=<run id> finishes it") from None
 
 
 def log_config(cfg: DictConfig, scratch_dir: Path) -> None:
