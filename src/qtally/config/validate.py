@@ -32,6 +32,13 @@ def schedule_parameters(schedule: DictConfig) -> dict:
     kind = schedule.kind
     if kind not in SCHEDULE_KINDS:
         raise ConfigError(f"schedule.kind={kind!r} is unknown; choose one of {', '.join(SCHEDULE_KINDS)}")
+    for key in ("epsilon", "start", "end", "decay_episodes", "rate", "scale", "floor"):
+        if key not in _SCHEDULE_PARAMETERS[kind] and schedule.get(key) is not None:
+            # Set but unused, it would be silently ignored: the run would not be the one asked for.
+            raise ConfigError(
+                f"schedule.{key}={schedule.get(key)} does not apply to schedule={kind} (its keys: {', '.join(_SCHEDULE_PARAMETERS[kind])}); "
+                f"drop it, or choose the schedule that has it"
+            )
     parameters = {}
     for key in _SCHEDULE_PARAMETERS[kind]:
         value = schedule.get(key)
