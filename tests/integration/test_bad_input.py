@@ -108,3 +108,18 @@ def test_a_store_that_cannot_be_used_is_refused_in_seconds(run_cli, tmp_path, ur
     assert time.monotonic() - started < 60  # the probe's bound plus start-up; MLflow's own retries took 248 s
     _assert_clean_failure(result, "qtally-train", words, tmp_path / "mlflow.db")
     assert not (tmp_path / "some").exists()
+
+
+PROGRAMS = ("qtally-train", "qtally-evaluate", "qtally-compare", "qtally-promote", "qtally-rollout")
+
+
+@pytest.mark.parametrize("program", PROGRAMS)
+def test_every_command_refuses_a_config_folder_it_cannot_read(run_cli, tmp_path, program):
+    """A broken YAML file under --config-dir, and a folder that is not there: one line naming the file and line, nothing recorded."""
+    broken = tmp_path / "mine" / "env"
+    broken.mkdir(parents=True)
+    (broken / "shop.yaml").write_text("id: FrozenLake-v1\nkwargs: {map_name: 4x4\ngamma: [1\n")
+    result = run_cli(program, "--config-dir", str(tmp_path / "mine"))
+    _assert_clean_failure(result, program, ["shop.yaml: line 3, column 6 is not valid YAML", "--config-dir"], tmp_path / "mlflow.db")
+    result = run_cli(program, "--config-dir", str(tmp_path / "absent"))
+    _assert_clean_failure(result, program, ["--config-dir", "absent: no such folder"], tmp_path / "mlflow.db")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import sys
+from pathlib import Path
 from typing import Callable, Mapping, TypeVar
 
 from tqdm import tqdm
@@ -75,11 +76,40 @@ def run_reporting_errors(program: str, action: Callable[[], T]) -> T:
         fail(program, f"{type(exc).__name__}: {first} (any open run was closed as FAILED; set QTALLY_DEBUG=1 for the traceback)", code=1)
 
 
+def config_dir_problem(arguments: list[str]) -> str | None:
+    """A ``--config-dir`` that is missing or holds a YAML file that does not parse, as one line.
+
+    Hydra would print its own block (or a parser traceback) much later; the user's file and
+    line are what matter.
+    """
+    import yaml
+
+    for i, argument in enumerate(arguments):
+        if argument in ("--config-dir", "-cd") and i + 1 < len(arguments):
+            folder = arguments[i + 1]
+        elif argument.startswith("--config-dir="):
+            folder = argument.split("=", 1)[1]
+        else:
+            continue
+        root = Path(folder)
+        if not root.is_dir():
+            return f"--config-dir {folder}: no such folder; give the folder that holds your config groups (for example env/)"
+        for path in sorted(root.rglob("*.yaml")):
+            try:
+                yaml.safe_load(path.read_text())
+            except (yaml.YAMLError, OSError, UnicodeDecodeError) as exc:
+                mark = getattr(exc, "problem_mark", None)
+                where = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+                reason = getattr(exc, "problem", None) or type(exc).__name__
+                return f"{path}:{where} is not valid YAML ({reason}); fix the file or leave it out of --config-dir"
+    return None
+
+
 def pre_check_overrides(program: str, schema, groups: tuple[str, ...], config_file: str) -> None:
-    """Refuse a mistyped override in one line before Hydra composes anything."""
+    """Refuse a mistyped override or an unreadable config folder in one line before Hydra composes anything."""
     from .overrides import first_override_problem
 
-    problem = first_override_problem(sys.argv[1:], schema, groups=groups, config_file=config_file)
+    problem = config_dir_problem(sys.argv[1:]) or first_override_problem(sys.argv[1:], schema, groups=groups, config_file=config_file)
     if problem:
         fail(program, problem)
 
