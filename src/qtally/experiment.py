@@ -221,7 +221,8 @@ def resume_training(cfg: DictConfig, progress_factory=None, announce=None) -> Ru
 
     quiet_libraries()
     run_id = str(cfg.resume)
-    uri = resolve_tracking_uri(cfg.tracking.uri)
+    sweep = current_sweep()
+    uri = sweep.tracking_uri if sweep else resolve_tracking_uri(cfg.tracking.uri)
     mlflow.set_tracking_uri(uri)
     client = MlflowClient(uri)
     try:

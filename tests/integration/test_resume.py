@@ -130,7 +130,7 @@ def test_sigterm_stops_with_a_checkpoint_as_killed_then_resumes_to_finished(tmp_
     "arguments, words",
     [
         (["resume=0123456789abcdef"], ["resume=0123456789abcdef", "no run with this id"]),
-        (["-m", "seed=1,2", "resume=abc"], ["resume=<run id> continues one run", "sweep cannot be resumed"]),
+        (["-m", "seed=1,2", "resume=abc"], ["resume=abc: no run with this id", "parent run id of the sweep"]),
         (["resume=abc", "seed=3"], ["resume=<run id> continues the run with the config it was started with", "drop seed=3"]),
         (["checkpoint_dir=/proc/qtally-cannot-write", "episodes=10"], ["checkpoint_dir='/proc/qtally-cannot-write'", "cannot be written"]),
         (["checkpoint_every=-1", "episodes=10"], ["checkpoint_every=-1", "0 (off) or a positive"]),
@@ -142,3 +142,30 @@ def test_bad_resume_and_checkpoint_input_fails_in_one_line(tmp_path, arguments, 
     assert result.returncode != 0 and len(lines) == 1 and "Traceback" not in result.stderr, result.stderr
     for word in words:
         assert word in lines[0], (word, lines[0])
+
+
+def test_a_stopped_sweep_resumes_skipping_finished_jobs(tmp_path):
+    """Two jobs one after the other; Ctrl-C during the second; resume: the first is skipped, the second continues."""
+    sweep = ["-m", "env=restock", "engine=gym", "episodes=30000", "checkpoint_every=3000", "eval_every=15000", "eval_episodes=100",
+             "rollout_animation=false", "tracking.log_model=false", "quiet=true", "seed=0,1"]
+    process = subprocess.Popen(_command(*sweep), cwd=tmp_path, env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while len(list(tmp_path.glob("checkpoints/*/trainer_state.npz"))) < 2:  # the second job has checkpointed
+        assert process.poll() is None, process.communicate()
+        assert time.monotonic() < deadline
+        time.sleep(0.05)
+    process.send_signal(signal.SIGINT)
+    process.communicate(timeout=120)
+    assert process.returncode != 0
+    client = MlflowClient(f"sqlite:///{tmp_path / 'mlflow.db'}")
+    experiment = client.get_experiment_by_name("qtally").experiment_id
+    (parent,) = client.search_runs([experiment], filter_string="tags.`qtally.role` = 'sweep'")
+    before = {r.data.tags["seed"]: (r.info.run_id, r.info.status) for r in client.search_runs([experiment], filter_string="tags.`qtally.role` = 'job'")}
+    assert parent.info.status == "KILLED" and sorted(status for _, status in before.values()) == ["FINISHED", "KILLED"]
+    resumed = subprocess.run(_command(*sweep, f"resume={parent.info.run_id}"), cwd=tmp_path, env=_env(), capture_output=True, text=True, timeout=600)
+    assert resumed.returncode == 0, resumed.stderr[-2000:]
+    assert "had finished; skipped" in resumed.stdout
+    after = {r.data.tags["seed"]: (r.info.run_id, r.info.status) for r in client.search_runs([experiment], filter_string="tags.`qtally.role` = 'job'")}
+    assert {seed: run_id for seed, (run_id, _) in after.items()} == {seed: run_id for seed, (run_id, _) in before.items()}  # no job ran twice
+    assert {status for _, status in after.values()} == {"FINISHED"}
+    assert client.get_run(parent.info.run_id).info.status == "FINISHED"

@@ -6,7 +6,7 @@ import math
 import sys
 
 import hydra
-from omegaconf import DictConfig
+from omegaconf import DictConfig, OmegaConf
 
 from ..config.schema import register_schema
 from .console import TrainingProgress, fail, pre_check_overrides, quiet_libraries, run_reporting_errors
@@ -91,11 +91,29 @@ def _sweep_job(cfg: DictConfig) -> float:
 def _one_sweep_run(cfg: DictConfig) -> float:
     from ..errors import QtallyError, first_line
     from ..experiment import run_name, run_training
-    from ..tracking.sweep import current_sweep, record_failed_job
+    from ..tracking.sweep import current_sweep, earlier_run_of_job, job_group, record_failed_job, supersede
 
     opened: list[str] = []
+    earlier = None
+    if cfg.get("resume"):  # a resumed sweep (resume = its parent): a finished job is skipped, an unfinished one continues
+        earlier = earlier_run_of_job(current_sweep(), job_group(cfg), int(cfg.seed))
+        cfg = cfg.copy()
+        OmegaConf.update(cfg, "resume", None)
+        if earlier is not None and earlier.info.status == "FINISHED":
+            final = float(earlier.data.metrics.get("eval_return_mean", float("nan")))
+            print(f"{PROGRAM}: job {run_name(cfg)}: run {earlier.info.run_id} had finished; skipped")
+            return final
+        if earlier is not None:
+            OmegaConf.update(cfg, "resume", earlier.info.run_id)
     try:
-        summary = run_training(cfg, announce=opened.append)
+        try:
+            summary = run_training(cfg, announce=opened.append)
+        except QtallyError as exc:
+            if earlier is None or "no checkpoint" not in str(exc):
+                raise
+            OmegaConf.update(cfg, "resume", None)  # stopped before its first checkpoint: run the job afresh
+            summary = run_training(cfg, announce=opened.append)
+            supersede(current_sweep(), earlier.info.run_id, summary.run_id)
     except QtallyError as exc:
         reason = str(exc)
     except Exception as exc:  # a job that breaks while running: recorded, reported, the sweep continues
@@ -108,6 +126,16 @@ def _one_sweep_run(cfg: DictConfig) -> float:
         record_failed_job(cfg, current_sweep(), run_name(cfg), {"variant": cfg.variant.name, "schedule": cfg.schedule.kind, "seed": str(cfg.seed)}, reason)
     print(f"{PROGRAM}: job {run_name(cfg)} failed: {reason}", file=sys.stderr)
     return float("nan")
+
+
+def _check_sweep_to_resume(parent: str) -> None:
+    from mlflow.tracking import MlflowClient
+
+    from ..tracking.runs import resolve_tracking_uri
+    from ..tracking.sweep import sweep_parent
+
+    configured = next((a.split("=", 1)[1] for a in sys.argv[1:] if a.startswith("tracking.uri=")), None)
+    sweep_parent(MlflowClient(resolve_tracking_uri(configured)), parent)
 
 
 # What a resumed run takes from the command line; everything else comes from the run itself.
@@ -132,8 +160,9 @@ def main() -> None:
         if ignored:
             fail(PROGRAM, f"resume=<run id> continues the run with the config it was started with; drop {' '.join(ignored)} (only {', '.join(_RESUME_KEYS)} apply)")
     if is_sweep(sys.argv[1:]):
-        if any(argument.startswith("resume=") for argument in sys.argv[1:]):
-            fail(PROGRAM, "resume=<run id> continues one run; a sweep cannot be resumed yet (run its unfinished jobs again, each with resume=<its run id>)")
+        parent = next((a.split("=", 1)[1] for a in sys.argv[1:] if a.startswith("resume=")), None)
+        if parent:
+            run_reporting_errors(PROGRAM, lambda: _check_sweep_to_resume(parent))
         problem = first_bad_job(sys.argv[1:])
         if problem:
             fail(PROGRAM, f"{problem} (nothing was started)")

@@ -116,13 +116,16 @@ class SweepCallback(Callback):
         client = MlflowClient(uri)
         overrides = [str(o) for o in (OmegaConf.select(config, "hydra.overrides.task", default=[]) or [])]
         jobs = _job_count(config)
-        run = client.create_run(
-            experiment.experiment_id,
-            run_name=f"sweep {time.strftime('%Y-%m-%d %H:%M:%S')}",
-            tags={ROLE_TAG: "sweep", "qtally.sweep_overrides": " ".join(overrides)[:4000]},
-        )
-        client.log_param(run.info.run_id, "sweep.overrides", " ".join(overrides)[:500])
-        client.log_param(run.info.run_id, "sweep.jobs", str(jobs))
+        if config.get("resume"):  # a sweep resumed: its parent opens again, its jobs find their own runs
+            run = reopen_sweep(client, str(config.resume))
+        else:
+            run = client.create_run(
+                experiment.experiment_id,
+                run_name=f"sweep {time.strftime('%Y-%m-%d %H:%M:%S')}",
+                tags={ROLE_TAG: "sweep", "qtally.sweep_overrides": " ".join(overrides)[:4000]},
+            )
+            client.log_param(run.info.run_id, "sweep.overrides", " ".join(overrides)[:500])
+            client.log_param(run.info.run_id, "sweep.jobs", str(jobs))
         sweep_dir = Path(config.hydra.sweep.dir)
         sweep_dir.mkdir(parents=True, exist_ok=True)
         context = SweepContext(run.info.run_id, uri, experiment.experiment_id, str(sweep_dir.resolve()), jobs, _swept_keys(config))
@@ -155,6 +158,50 @@ class SweepCallback(Callback):
         _open_parent.clear()
 
 
+SUPERSEDED_TAG = "qtally.superseded_by"
+
+
+def sweep_parent(client, parent_run_id: str):
+    """The parent run of a sweep to resume; a one-line error if there is none by that id."""
+    from ..errors import QtallyError
+
+    try:
+        run = client.get_run(parent_run_id)
+    except Exception:
+        raise QtallyError(f"resume={parent_run_id}: no run with this id in the store; with -m, give the parent run id of the sweep to continue") from None
+    if run.data.tags.get(ROLE_TAG) != "sweep":
+        raise QtallyError(f"resume={parent_run_id} is not a sweep's parent run; with -m, resume names the parent of the sweep to continue")
+    return run
+
+
+def reopen_sweep(client, parent_run_id: str):
+    """The parent run of the sweep to resume, set RUNNING again."""
+    run = sweep_parent(client, parent_run_id)
+    client.update_run(parent_run_id, status="RUNNING")
+    return run
+
+
+def earlier_run_of_job(context: SweepContext, group: str, seed: int):
+    """In a resumed sweep, this job's run from before (the newest one for its group and seed), or None."""
+    from mlflow.tracking import MlflowClient
+
+    client = MlflowClient(context.tracking_uri)
+    found = client.search_runs(
+        [context.experiment_id],
+        filter_string=f"tags.`{SWEEP_TAG}` = '{context.parent_run_id}' and tags.`{GROUP_TAG}` = '{group}' and tags.seed = '{seed}'",
+        order_by=["attributes.start_time DESC"],
+    )
+    found = [run for run in found if SUPERSEDED_TAG not in run.data.tags]
+    return found[0] if found else None
+
+
+def supersede(context: SweepContext, old_run_id: str, new_run_id: str) -> None:
+    """An earlier run of a job that could not be continued (no checkpoint) is replaced by a fresh one."""
+    from mlflow.tracking import MlflowClient
+
+    MlflowClient(context.tracking_uri).set_tag(old_run_id, SUPERSEDED_TAG, new_run_id)
+
+
 def current_sweep() -> SweepContext | None:
     """The sweep this job belongs to, or None outside a sweep."""
     text = os.environ.get(CONTEXT_VARIABLE)
@@ -167,9 +214,14 @@ def current_sweep() -> SweepContext | None:
 
 def _group_config(cfg: DictConfig) -> dict[str, Any]:
     container = OmegaConf.to_container(cfg, resolve=True)
-    for key in ("tracking", "quiet", "hydra"):
+    for key in ("tracking", "quiet", "hydra", "resume", "checkpoint_dir", "checkpoint_every", "engine"):  # none changes what is learned
         container.pop(key, None)
     return container
+
+
+def job_group(cfg: DictConfig) -> str:
+    """The comparison group of a job's config (its seed left out)."""
+    return group_key(_group_config(cfg))
 
 
 def child_tags(cfg: DictConfig, context: SweepContext) -> dict[str, str]:
@@ -180,7 +232,7 @@ def child_tags(cfg: DictConfig, context: SweepContext) -> dict[str, str]:
     return {
         PARENT_TAG: context.parent_run_id,
         SWEEP_TAG: context.parent_run_id,
-        GROUP_TAG: group_key(_group_config(cfg)),
+        GROUP_TAG: job_group(cfg),
         GROUP_LABEL_TAG: group_label(o for o in overrides if o.split("=", 1)[0].lstrip("+~") in context.swept_keys)[:500],
         ROLE_TAG: "job",
     }
@@ -214,6 +266,7 @@ def finish_sweep(parent_run_id: str, uri: str) -> dict[str, Any]:
     client = MlflowClient(uri)
     parent = client.get_run(parent_run_id)
     children = client.search_runs([parent.info.experiment_id], filter_string=f"tags.`{SWEEP_TAG}` = '{parent_run_id}'", max_results=10000)
+    children = [child for child in children if SUPERSEDED_TAG not in child.data.tags]
     counts = {"FINISHED": 0, "FAILED": 0, "KILLED": 0, "RUNNING": 0}
     failures: list[str] = []
     groups: dict[str, list[float]] = {}
