@@ -79,6 +79,12 @@ def test_engines_agree_where_time_limits_and_the_step_cap_cut_episodes(variant, 
     _assert_same(*runs)
 
 
+def test_engines_agree_on_an_on_policy_bootstrap_with_ten_actions():
+    # Ten actions: numpy's mean of a row would sum pairwise from eight on; both engines must add left to right.
+    wide = EnvironmentSpec(id="qtally/Restock-v0", kwargs={"max_order": 9, "shelf_life": 1}, max_episode_steps=6)  # 15 states: rows fill fast
+    _assert_same(*(_train(wide, "on_policy", True, GlieEpisodes(20.0, 0.3), engine, episodes=1500, truncation="bootstrap", gamma=1.0) for engine in ("gym", "compiled")))
+
+
 @pytest.mark.parametrize("variant", ["exploring_starts", "off_policy"])
 def test_engines_agree_on_taxi(variant):
     taxi = EnvironmentSpec(id="Taxi-v4", max_episode_steps=100)

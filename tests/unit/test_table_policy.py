@@ -80,3 +80,18 @@ def test_first_visit_is_per_state_action_pair():
     values.q[0] = [0.0, 5.0]  # target: action 1, the last action taken; the loop reaches t = 0
     OffPolicy(gamma=1.0, first_visit=True).update(values, EpisodeArrays(np.array([0, 0]), np.array([0, 1]), np.array([1.0, 2.0]), np.array([0.5, 0.5])))
     assert values.visits[0].tolist() == [1, 1]
+
+
+def test_state_value_adds_left_to_right_as_the_compiled_kernel_does():
+    """With eight actions or more numpy's mean sums pairwise; the tail value must not depend on that."""
+    rows = np.random.default_rng(8).normal(size=(2000, 10)) * 37.0
+    policy = TablePolicy(rows)
+    numpy_mean_differs = 0
+    for s, row in enumerate(rows):
+        total = 0.0
+        for value in row.tolist():
+            total += value
+        expected = 0.3 * (total / 10) + 0.7 * row.max()
+        assert policy.state_value(s, 0.3) == expected
+        numpy_mean_differs += 0.3 * row.mean() + 0.7 * row.max() != expected
+    assert numpy_mean_differs > 0  # the rule matters on these rows

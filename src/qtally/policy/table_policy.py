@@ -209,9 +209,17 @@ class TablePolicy:
         return epsilon_soft_probabilities(self.q, epsilon)
 
     def state_value(self, state: int, epsilon: float = 0.0) -> float:
-        """``sum_a pi(a|s) Q(s, a)`` of the epsilon-soft policy: the value a cut-off episode is seeded with."""
-        row = self.q[state]
-        return float(epsilon * row.mean() + (1.0 - epsilon) * row.max())
+        """``sum_a pi(a|s) Q(s, a)`` of the epsilon-soft policy: the value a cut-off episode is seeded with.
+
+        The mean is a plain left-to-right sum (not numpy's pairwise one, nor Python 3.12's
+        compensated ``sum``), the same additions the compiled kernel makes, so both engines
+        seed a cut episode with the same float whatever the number of actions.
+        """
+        row = self.q[state].tolist()
+        total = 0.0
+        for value in row:
+            total += value
+        return float(epsilon * (total / len(row)) + (1.0 - epsilon) * max(row))
 
     @property
     def visited_states(self) -> np.ndarray:
