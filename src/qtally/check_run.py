@@ -133,8 +133,8 @@ def check_environment(cfg: DictConfig) -> tuple[str, list[Finding]]:
     try:
         model_of(environment.env)
         findings.append(Finding("model", True, "exact values, optimality_gap and the optimal policy map at every evaluation"))
-    except NoModelError as exc:
-        findings.append(Finding("model", False, f"none ({first_line(exc)[:100]}): no exact metrics; implement tabular_model() to get them"))
+    except NoModelError:
+        findings.append(Finding("model", False, "none: no exact metrics (implement tabular_model() to get them)"))
     except Exception as exc:
         findings.append(Finding("model", False, f"tabular_model() failed: {type(exc).__name__}: {first_line(exc)[:120]}"))
     try:

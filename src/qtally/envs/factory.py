@@ -104,6 +104,25 @@ def _refused(spec: EnvironmentSpec, exc: BaseException) -> EnvironmentConfigErro
     return EnvironmentConfigError(f"env.id={spec.id!r}: the environment could not be made ({first_line(exc)})")
 
 
+def _import_entry_module(module_name: str):
+    """The module of a ``module:Class`` entry point: from the Python path, else from the working directory.
+
+    A console script does not put the working directory on the path, yet a simulator file
+    sitting beside the user's configs is the common case.
+    """
+    import os
+    import sys
+
+    try:
+        return importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        here = os.getcwd()
+        if exc.name != module_name.split(".")[0] or here in sys.path:
+            raise
+        sys.path.append(here)
+        return importlib.import_module(module_name)
+
+
 def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
     kwargs = dict(spec.kwargs or {})
     if render_mode is not None:
@@ -111,7 +130,7 @@ def _construct(spec: EnvironmentSpec, render_mode: str | None) -> gym.Env:
     if ":" in spec.id and "/" not in spec.id.split(":", 1)[0]:
         module_name, _, class_name = spec.id.partition(":")
         try:
-            module = importlib.import_module(module_name)
+            module = _import_entry_module(module_name)
         except ImportError as exc:
             raise EnvironmentConfigError(f"env.id={spec.id!r}: cannot import module {module_name!r} ({exc}); check the entry point 'module:Class'") from None
         cls = getattr(module, class_name, None)
