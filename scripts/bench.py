@@ -23,7 +23,7 @@ Every figure is a median over ``--repeats`` runs. ``--quick`` shrinks every run 
 use it to check the script works); the README's figures come from the full mode::
 
     python scripts/bench.py
-    python scripts/bench.py --quick --out /tmp/bench
+    python scripts/bench.py --quick --out bench-quick
 """
 
 from __future__ import annotations
