@@ -194,12 +194,17 @@ def run_training(cfg: DictConfig, progress_factory=None, announce=None) -> RunSu
 def _check_checkpoint_dir(cfg: DictConfig) -> None:
     """A checkpoint that cannot be written would be found out only when it is needed: try now."""
     folder = Path(cfg.checkpoint_dir)
+    missing = [folder, *folder.parents]
+    missing = [p for p in missing if not p.exists()]
     try:
         folder.mkdir(parents=True, exist_ok=True)
         with tempfile.NamedTemporaryFile(dir=folder, prefix=".write-check-"):
             pass
     except OSError as exc:
         raise QtallyError(f"checkpoint_dir={cfg.checkpoint_dir!r} cannot be written ({exc.strerror}); give a folder you can write to") from None
+    for made in missing:  # leave no empty folders behind: a checkpoint creates them again when it is written
+        with contextlib.suppress(OSError):
+            made.rmdir()
 
 
 def checkpoint_path(cfg: DictConfig, run_id: str) -> Path:

@@ -25,7 +25,7 @@ from qtally.control.trainer_state import TrainerState
 # Long enough on the gym path to be stopped between two checkpoints (restocking seasons, ~14 steps each);
 # log_every=20 fills the recorder's 1000-metric queue between checkpoints, so some metrics after a
 # checkpoint reach the store before the kill and the resume must not send them again.
-ARGS = ["env=restock", "engine=gym", "episodes=40000", "checkpoint_every=4000", "eval_every=8000", "eval_episodes=200",
+ARGS = ["env=restock", "engine=gym", "episodes=20000", "checkpoint_every=4000", "eval_every=8000", "eval_episodes=200",
         "log_every=20", "rollout_animation=false", "tracking.log_model=false", "quiet=true", "seed=7"]
 
 
@@ -117,7 +117,7 @@ def test_sigterm_stops_with_a_checkpoint_as_killed_then_resumes_to_finished(tmp_
     client, run = _only_run(tmp_path)
     assert run.info.status == "KILLED"
     stopped_at = int(lines[0].split("at episode ")[1].split(";")[0])
-    assert 4000 <= stopped_at < 40000
+    assert 4000 <= stopped_at < 20000
     assert "checkpoint/trainer_state.npz" in [a.path for a in client.list_artifacts(run.info.run_id, "checkpoint")]
     resumed = subprocess.run(_command(f"resume={run.info.run_id}", "quiet=true"), cwd=tmp_path, env=_env(), capture_output=True, text=True, timeout=600)
     assert resumed.returncode == 0, resumed.stderr[-2000:]
@@ -146,7 +146,7 @@ def test_bad_resume_and_checkpoint_input_fails_in_one_line(tmp_path, arguments, 
 
 def test_a_stopped_sweep_resumes_skipping_finished_jobs(tmp_path):
     """Two jobs one after the other; Ctrl-C during the second; resume: the first is skipped, the second continues."""
-    sweep = ["-m", "env=restock", "engine=gym", "episodes=30000", "checkpoint_every=3000", "eval_every=15000", "eval_episodes=100",
+    sweep = ["-m", "env=restock", "engine=gym", "episodes=12000", "checkpoint_every=3000", "eval_every=15000", "eval_episodes=100",
              "rollout_animation=false", "tracking.log_model=false", "quiet=true", "seed=0,1"]
     process = subprocess.Popen(_command(*sweep), cwd=tmp_path, env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 300
