@@ -225,13 +225,6 @@ class RestockEnv(gym.Env):
         kept = next_stock.sum(axis=1)
         salvaged = np.where(last_day, leftover, 0)
 
-        revenue = self.price * sold
-        ordering_cost = self.unit_cost * order
-        holding_cost = self.holding_cost * kept
-        spoilage_cost = self.spoilage_cost * (spoiled + discarded)
-        lost_sale_cost = self.lost_sale_cost * unmet
-        salvage_revenue = self.salvage_value * salvaged
-        reward = revenue + salvage_revenue - ordering_cost - holding_cost - spoilage_cost - lost_sale_cost
         return {
             "shelf": shelf,
             "sold": sold,
@@ -242,14 +235,26 @@ class RestockEnv(gym.Env):
             "salvaged": salvaged,
             "kept": kept,
             "ordered": order,
+            **self._money(sold, order, kept, spoiled + discarded, unmet, salvaged),
+            "next_stock": next_stock,
+        }
+
+    def _money(self, sold, order, kept, wasted, unmet, salvaged) -> dict:
+        """The day's money items and reward from its counts: numbers for one shop, arrays for a batch."""
+        revenue = self.price * sold
+        ordering_cost = self.unit_cost * order
+        holding_cost = self.holding_cost * kept
+        spoilage_cost = self.spoilage_cost * wasted
+        lost_sale_cost = self.lost_sale_cost * unmet
+        salvage_revenue = self.salvage_value * salvaged
+        return {
             "revenue": revenue,
             "ordering_cost": ordering_cost,
             "holding_cost": holding_cost,
             "spoilage_cost": spoilage_cost,
             "lost_sale_cost": lost_sale_cost,
             "salvage_revenue": salvage_revenue,
-            "reward": reward,
-            "next_stock": next_stock,
+            "reward": revenue + salvage_revenue - ordering_cost - holding_cost - spoilage_cost - lost_sale_cost,
         }
 
     def _serve_day(self, order: int, demand: int, last_day: bool) -> tuple[float, list[int], dict]:
@@ -278,19 +283,9 @@ class RestockEnv(gym.Env):
             discarded = sum(aged) - sum(next_stock)
             kept = sum(next_stock)
             salvaged = 0
-        revenue = self.price * sold
-        ordering_cost = self.unit_cost * order
-        holding_cost = self.holding_cost * kept
-        spoilage_cost = self.spoilage_cost * (spoiled + discarded)
-        lost_sale_cost = self.lost_sale_cost * unmet
-        salvage_revenue = self.salvage_value * salvaged
-        reward = revenue + salvage_revenue - ordering_cost - holding_cost - spoilage_cost - lost_sale_cost
-        info = {
-            "sold": sold, "demand": demand, "lost": unmet, "spoiled": spoiled, "discarded": discarded,
-            "salvaged": salvaged, "kept": kept, "ordered": order,
-            "revenue": revenue, "ordering_cost": ordering_cost, "holding_cost": holding_cost,
-            "spoilage_cost": spoilage_cost, "lost_sale_cost": lost_sale_cost, "salvage_revenue": salvage_revenue,
-        }
+        info = {"sold": sold, "demand": demand, "lost": unmet, "spoiled": spoiled, "discarded": discarded, "salvaged": salvaged, "kept": kept, "ordered": order}
+        info.update(self._money(sold, order, kept, spoiled + discarded, unmet, salvaged))
+        reward = info.pop("reward")
         return reward, next_stock, dict(info, shelf=shelf)
 
     def _observation(self) -> np.ndarray:
