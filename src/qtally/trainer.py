@@ -115,6 +115,7 @@ class Trainer:
         self.facts = dict(facts or {})
         self.fallback = fallback  # what snapshots and the final policy do in states training never reached
         self.checkpoint = checkpoint  # writes the state somewhere safe (the experiment layer: a file and a run artifact)
+        self._per_state_schedule = bool(getattr(schedule, "per_state", False))
         self.stop_requested = False
         self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
         self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
@@ -173,7 +174,7 @@ class Trainer:
         decisions = 0
         epsilon_sum = 0.0
 
-        if getattr(schedule, "per_state", False):
+        if self._per_state_schedule:
             behaviour_epsilon = variant.behaviour_epsilon
             epsilons: list[float] = []
 

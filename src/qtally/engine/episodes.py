@@ -50,7 +50,7 @@ def _bookkeeping_free(env) -> tuple[Any, int]:
 Chooser = Callable[[int], tuple[int, float]]
 
 
-@dataclass(frozen=True)
+@dataclass  # not frozen: a frozen dataclass pays object.__setattr__ per field, once per episode
 class PlayedEpisode:
     """The episode as plain lists plus how it ended; :attr:`arrays` gives the numpy form.
 
