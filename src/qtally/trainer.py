@@ -281,8 +281,6 @@ class Trainer:
             while state.episode < stop:
                 self._play_until(self._next_boundary(stop))
                 episode = state.episode
-                if self.stop_requested and episode < settings.episodes:
-                    raise TrainingStopped(episode, self._write_checkpoint())
                 last = episode == settings.episodes
                 if episode % settings.log_every == 0 or last:
                     metrics = state.window.metrics()
@@ -297,6 +295,10 @@ class Trainer:
                     path = self.snapshot().save(snapshot_dir / f"policy-{episode:09d}.npz")
                     self.recorder.log_file(path, "snapshots")
                     path.unlink()
+                # A stop is honoured after this boundary's logging and evaluation, so a resumed run
+                # never misses them (the compiled engine always stops on a boundary).
+                if self.stop_requested and not last:
+                    raise TrainingStopped(episode, self._write_checkpoint())
                 if settings.checkpoint_every and (episode % settings.checkpoint_every == 0 or last):
                     self._write_checkpoint()
             state.environment_rng = self.episodes.rng_state()

@@ -138,3 +138,37 @@ def test_per_state_visits_drive_the_visit_schedule():
     assert epsilons[0] < 0.5 and epsilons[-1] < 0.05
     decisions = int(outcome.values.visits.sum())  # first-visit counts at most one per pair an episode...
     assert outcome.values.state_visits.sum() >= decisions  # ...while every decision counts a state visit
+
+
+@pytest.mark.parametrize("engine", ["gym", "compiled"])
+@pytest.mark.parametrize("stop_after", [199, 200, 230])
+def test_a_stop_then_resume_logs_every_step_once(tmp_path, engine, stop_after):
+    # Breakage caught: a stop honoured before the boundary's logging and evaluation (200 is
+    # both): the checkpoint then says 200 episodes were played, the resumed run starts at the
+    # next boundary and the step-200 metrics and evaluation are never logged. The compiled
+    # engine only stops on boundaries, so it always hit this.
+    from qtally.trainer import TrainingStopped
+
+    settings = TrainingSettings(episodes=400, seed=11, log_every=50, eval_every=100, eval_episodes=10, engine=engine)
+    straight = _q(SLIPPERY_LAKE, settings, "on_policy", GlieVisits(3.0, 0.05))
+
+    first = Trainer(make_environment(SLIPPERY_LAKE), make_variant("on_policy", 0.95, True, None), GlieVisits(3.0, 0.05), settings,
+                    checkpoint=lambda trainer: trainer.save_state(tmp_path / "state.npz"))
+    assert first.engine == engine
+    play_until = first._play_until
+
+    def play_and_ask_to_stop(episode: int) -> None:
+        play_until(min(episode, stop_after) if engine == "gym" else episode)
+        if first.state.episode >= stop_after:
+            first.request_stop("a test")
+
+    first._play_until = play_and_ask_to_stop
+    with pytest.raises(TrainingStopped) as stopped:
+        first.run()
+    expected_stop = stop_after if engine == "gym" else (stop_after // 50 + (stop_after % 50 > 0)) * 50
+    assert stopped.value.episode == expected_stop
+    second = Trainer(make_environment(SLIPPERY_LAKE), make_variant("on_policy", 0.95, True, None), GlieVisits(3.0, 0.05), settings,
+                     state=TrainerState.load(tmp_path / "state.npz"))
+    resumed = second.run()
+    np.testing.assert_array_equal(straight.values.q, resumed.values.q)
+    assert resumed.history == straight.history
