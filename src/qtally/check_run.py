@@ -65,12 +65,18 @@ def _episodes(environment, seed: int, actions: np.ndarray, count: int, cap: int)
     return played
 
 
-def _speed(environment, seconds: float, seed: int, cap: int) -> tuple[float, float, int]:
-    """Seconds a step and steps an episode, from random episodes played for about ``seconds``."""
+def _speed(environment, seconds: float, seed: int, cap: int) -> tuple[float, float, int, float]:
+    """Seconds a step, steps an episode, episodes played, and the share of the time spent computing.
+
+    From random episodes played for about ``seconds``. The computing share (CPU time over
+    wall time) tells a simulator that computes from one that waits (on another program, a
+    network, a disk), which decides how many workers pay off.
+    """
     env = environment.env
     rng = np.random.default_rng(seed)
     steps = episodes = 0
     env.reset(seed=seed)
+    cpu_started = time.process_time()
     started = time.perf_counter()
     while time.perf_counter() - started < seconds or episodes == 0:
         env.reset()
@@ -81,7 +87,38 @@ def _speed(environment, seconds: float, seed: int, cap: int) -> tuple[float, flo
             if terminated or truncated:
                 break
     elapsed = time.perf_counter() - started
-    return elapsed / max(steps, 1), steps / episodes, episodes
+    busy = min(1.0, (time.process_time() - cpu_started) / elapsed) if elapsed > 0 else 1.0
+    return elapsed / max(steps, 1), steps / episodes, episodes, busy
+
+
+def parallel_speedup(workers: int, cores: int, busy: float) -> float:
+    """How many times faster ``workers`` collection workers play than one, at best.
+
+    Each worker computes ``busy`` of its time, so the machine's ``cores`` carry at most
+    ``cores / busy`` of them at full speed: a computing simulator gains up to the core
+    count, a waiting one up to the worker count. The learner's own updates and the
+    messages are not counted (measure with scripts/bench_collect.py).
+
+    >>> parallel_speedup(4, 2, 1.0), parallel_speedup(4, 2, 0.1), parallel_speedup(1, 8, 1.0)
+    (2.0, 4.0, 1.0)
+    """
+    return float(min(workers, cores / max(busy, 1e-9)))
+
+
+def _workers_finding(cfg: DictConfig, total: float, episode_seconds: float, busy: float, compiled: bool) -> Finding:
+    """Whether ``collect.workers`` pays off here, and the time it would take (see :func:`parallel_speedup`)."""
+    import os
+
+    cores = os.cpu_count() or 1
+    workers = int(cfg.workers) if cfg.workers else cores
+    speedup = parallel_speedup(workers, cores, busy)
+    kind = f"computes {busy:.0%} of its time" + (" (bound by the CPU)" if busy > 0.5 else " (mostly waiting)")
+    estimate = f"collect.workers={workers}: about {_duration(total / speedup)} ({speedup:.2g}x; {cores} cores here, the simulator {kind})"
+    if compiled:
+        return Finding("parallel workers", False, f"{estimate}; not needed: engine=auto compiles this environment, faster than any number of workers")
+    if episode_seconds < 2e-3:  # measured on 2 cores: no gain at 0.2 ms an episode, 1.4x with 2 workers at 1 ms
+        return Finding("parallel workers", False, f"{estimate} at best; episodes this short ({episode_seconds * 1e3:.2g} ms) gain little: the messages and the learner's own work take about as long")
+    return Finding("parallel workers", speedup > 1.2, estimate + ("" if speedup > 1.2 else ": more workers would not help on this machine"))
 
 
 def _duration(seconds: float) -> str:
@@ -119,7 +156,7 @@ def check_environment(cfg: DictConfig) -> tuple[str, list[Finding]]:
         same = first == second
         findings.append(Finding("reproducible", same, "reset(seed=...) replays the same episodes: a seed pins a run" if same else
                                 "reset(seed=...) did not replay the same episodes: runs cannot be repeated; seed the environment's randomness from self.np_random"))
-        step_seconds, length, probed = _speed(environment, float(cfg.probe_seconds), cfg.seed, min(cap, 100_000))
+        step_seconds, length, probed, busy = _speed(environment, float(cfg.probe_seconds), cfg.seed, min(cap, 100_000))
     except Exception as exc:  # reset or step broke: nothing can be trained
         environment.close()
         return spec.id, findings + [Finding("episodes", False, f"playing an episode failed: {type(exc).__name__}: {first_line(exc)[:160]}", required=True)]
@@ -155,5 +192,6 @@ def check_environment(cfg: DictConfig) -> tuple[str, list[Finding]]:
         f"{step_seconds * 1e6:.3g} µs a step, {length:.3g} steps an episode ({probed:,} random episodes): "
         f"{cfg.episodes:,} episodes take about {_duration(total)} of simulation on one core{engine_note}",
     ))
+    findings.append(_workers_finding(cfg, total, step_seconds * length, busy, compiled))
     environment.close()
     return spec.id, findings

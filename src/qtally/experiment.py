@@ -31,6 +31,7 @@ from .tracking.runs import log_config, open_experiment, recorded_run, resolve_tr
 from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
 from .control.truncation import resolve_step_cap
+from .engine.collection import CollectionFailed, CollectSettings
 from .trainer import Trainer, TrainingOutcome, TrainingSettings, TrainingStopped
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
@@ -139,6 +140,16 @@ def prepare(cfg: DictConfig):
             evaluation_environment.close()
             raise QtallyError(str(exc)) from None
     return variant, schedule, environment, evaluation_environment
+
+
+def collect_settings(cfg: DictConfig) -> CollectSettings:
+    """The ``collect`` block as :class:`CollectSettings` (validated by ``validate``)."""
+    collect = cfg.get("collect")
+    if collect is None:  # a config recorded before the block existed
+        return CollectSettings()
+    return CollectSettings(
+        workers=collect.workers, batch=collect.batch, backend=collect.backend, address=collect.address, worker_cpus=collect.worker_cpus, timeout=collect.timeout
+    )
 
 
 def policy_fallback(cfg: DictConfig) -> Fallback:
@@ -349,6 +360,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         eval_seed=cfg.eval_seed,
         engine=cfg.engine,
         checkpoint_every=cfg.get("checkpoint_every", 0),
+        collect=collect_settings(cfg),
     )
     progress = progress_factory(cfg.episodes) if progress_factory else None
     trainer = Trainer(
@@ -373,6 +385,9 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         with _stop_on_signals(trainer):
             outcome = trainer.run()
             _send_or_keep(recorder, trainer, cfg, run_id)
+    except CollectionFailed as failure:
+        where = f"its last whole batch is in {failure.checkpoint}; " if failure.checkpoint else ""
+        raise QtallyError(f"{failure}; the run was closed as FAILED; {where}continue with: qtally-train resume={run_id}") from None
     except TrainingStopped as stopped:
         where = f"its checkpoint: {stopped.checkpoint}; " if stopped.checkpoint else ""
         stopped.hint = f"stopped by {getattr(trainer, 'stop_reason', 'a stop request')} at episode {stopped.episode}; the run was closed as KILLED; {where}continue with: qtally-train resume={run_id}"

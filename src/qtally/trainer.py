@@ -26,14 +26,16 @@ from typing import Callable, Mapping, Protocol
 import numpy as np
 
 from .control.action_values import ActionValues
-from .control.streams import evaluation_base, evaluation_seeds, start_pair
+from .control.streams import evaluation_base, evaluation_seeds
 from .control.trainer_state import LogWindow, TrainerState
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
+from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, make_collector
 from .engine.episodes import GymEpisodes
+from .engine.player import EpisodePlayer, Experience
 from .envs.factory import TabularEnvironment, make_environment
 from .evaluate.rollouts import greedy_rollout_returns, summarise_returns
 from .policy.artifact import PolicyArtifact
-from .policy.table_policy import Fallback, epsilon_greedy_decision, greedy_actions
+from .policy.table_policy import Fallback, greedy_actions
 from .tracking.sink import NullRecorder, Recorder
 
 __all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATION_CHOICES", "ProgressSink"]
@@ -70,6 +72,7 @@ class TrainingSettings:
     engine: str = "auto"  # auto | gym | compiled (qtally.engine.compiled)
     checkpoint_every: int = 0  # 0: checkpoints only when stopped (and at the end, if a checkpoint hook is given)
     eval_seed: int | None = None  # None: the evaluation stream of ``seed``; a number: shared by every run that names it
+    collect: CollectSettings = field(default_factory=CollectSettings)  # who plays the episodes (qtally.engine.collection)
 
 
 @dataclass
@@ -115,11 +118,22 @@ class Trainer:
         self.facts = dict(facts or {})
         self.fallback = fallback  # what snapshots and the final policy do in states training never reached
         self.checkpoint = checkpoint  # writes the state somewhere safe (the experiment layer: a file and a run artifact)
-        self._per_state_schedule = bool(getattr(schedule, "per_state", False))
         self.stop_requested = False
         self.step_cap = resolve_step_cap(settings.step_cap, environment.n_states)
         self.start_states = list(environment.start_control.start_states()) if variant.needs_start_control else []
-        self.engine, self.engine_reason, self.episodes = choose_engine(settings.engine, environment, variant, schedule, self.step_cap, self.start_states)
+        requested = settings.engine
+        if settings.collect.parallel:
+            if requested == "compiled":
+                raise ValueError(
+                    f"engine=compiled plays in this process and collect.workers={settings.collect.workers} plays in workers: "
+                    "choose one (the compiled engine is the faster where it applies)"
+                )
+            requested = "gym"
+        self.engine, self.engine_reason, self.episodes = choose_engine(requested, environment, variant, schedule, self.step_cap, self.start_states)
+        if settings.collect.parallel:
+            where = f"Ray actors at {settings.collect.address}" if settings.collect.address else ("Ray actors on a local instance" if settings.collect.backend == "ray" else "processes")
+            self.engine_reason = f"{settings.collect.workers} collection workers ({where}), batches of {settings.collect.batch_size} episodes"
+        self._collector = None
         self._evaluation_environment = evaluation_environment
         self.state = state or TrainerState.fresh(environment.n_states, environment.n_actions, settings.seed, settings.initial_value)
         if self.state.values.q.shape != (environment.n_states, environment.n_actions):
@@ -128,6 +142,7 @@ class Trainer:
             self.episodes.restore_rng_state(self.state.environment_rng)
         elif self.state.episode == 0:
             self.episodes.seed(self.state.streams.env_seed)
+        self.player = EpisodePlayer(self.episodes, variant, schedule, self.start_states) if self.engine == "gym" else None
         self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
 
     # ------------------------------------------------------------ pieces
@@ -157,67 +172,27 @@ class Trainer:
         return metrics
 
     def play_and_learn(self) -> None:
-        """One episode on the gym path: choose a start, play it, update the table, add it to the window.
+        """One episode on the gym path: played against the live tables, then learned from."""
+        state = self.state
+        streams = state.streams
+        self.learn(self.player.play(state.values.q, state.values.state_visits, state.episode + 1, streams.acting, streams.starts))
 
-        Kept lean, since it runs for every step: epsilon is computed once per episode unless
-        the schedule depends on the state, the greedy action comes from the row as a list,
-        and the update reads the episode's lists. The compiled kernel does the same sums in
-        the same order (:mod:`qtally.engine.kernels`).
+    def learn(self, experience: Experience) -> None:
+        """Update the tables from the next episode, played by this trainer or by a collection worker.
+
+        Episodes must come in order (``experience.episode`` is the next one). The update
+        reads the episode's lists; the compiled kernel does the same sums in the same order
+        (:mod:`qtally.engine.kernels`).
         """
         state, variant, schedule = self.state, self.variant, self.schedule
+        if experience.episode != state.episode + 1:
+            raise ValueError(f"episode {experience.episode} arrived where episode {state.episode + 1} was due")
+        state.episode = episode = experience.episode
         values = state.values
         q, state_visits = values.q, values.state_visits
-        state.episode += 1
-        episode = state.episode
-        next_uniform = state.streams.acting.next
-        n_actions = self.environment.n_actions
-        decisions = 0
-        epsilon_sum = 0.0
-
-        if self._per_state_schedule:
-            behaviour_epsilon = variant.behaviour_epsilon
-            epsilons: list[float] = []
-
-            def choose(s: int) -> tuple[int, float]:
-                epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s])))
-                epsilons.append(epsilon)
-                state_visits[s] += 1
-                return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
-        else:
-            epsilon = variant.behaviour_epsilon(schedule(episode, 0))
-            epsilons = None
-            visited: list[int] = []
-            remember = visited.append
-            explore = epsilon / n_actions
-            exploit = explore + (1.0 - epsilon)
-
-            def choose(s: int) -> tuple[int, float]:
-                remember(s)
-                row = q[s].tolist()
-                greedy = row.index(max(row))
-                u = next_uniform()
-                if u < epsilon:
-                    action = min(int(u / epsilon * n_actions), n_actions - 1)
-                    return action, (exploit if action == greedy else explore)
-                return greedy, exploit
-
-        start_observation = first_action = None
-        if variant.needs_start_control:
-            index, first_action = start_pair(state.streams.starts.next(), len(self.start_states), n_actions)
-            start_observation = self.start_states[index]
-            state_visits[self.environment.encoder.encode(start_observation)] += 1
-        played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
-        if epsilons is None:
-            for s in visited:  # counted after the episode: nothing in it depends on the count
-                state_visits[s] += 1
-            decisions = len(visited)
-            for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
-                epsilon_sum += epsilon
-        else:
-            decisions = len(epsilons)
-            for e in epsilons:
-                epsilon_sum += e
-
+        for s in experience.visited:
+            state_visits[s] += 1
+        played = experience.played
         tail = 0.0
         if played.truncated and self.settings.truncation != "as_terminal":
             def bootstrap_value() -> float:
@@ -230,7 +205,8 @@ class Trainer:
         if tail is not None:
             used = variant.update_lists(values, played.states, played.actions, played.rewards, played.probabilities, tail)
         state.capped_episodes += played.capped
-        state.window.add(played.total_reward, played.length, epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)
+        decisions = experience.decisions
+        state.window.add(played.total_reward, played.length, experience.epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)
 
     def request_stop(self, reason: str = "a stop request") -> None:
         """Stop after the episode being played: checkpoint, then raise :class:`TrainingStopped` (safe from a signal handler)."""
@@ -241,8 +217,37 @@ class Trainer:
         if self.checkpoint is None:
             return None
         self.recorder.flush()  # what the checkpoint says was logged must be in the store
-        self.state.environment_rng = self.episodes.rng_state()
+        self._capture_streams()
         return self.checkpoint(self)
+
+    def _capture_streams(self) -> None:
+        """Put every random stream's current place into the state (the workers' ones after their last whole batch)."""
+        collector = self._collector
+        if collector is None:
+            if not self.settings.collect.parallel:  # else the workers' places were captured when they stopped
+                self.state.environment_rng = self.episodes.rng_state()
+            return
+        own = collector.latest[0]
+        if own is not None:
+            self.state.streams.acting.restore(own["acting"])
+            self.state.streams.starts.restore(own["starts"])
+            self.state.environment_rng = own["environment_rng"]
+        self.state.worker_streams = list(collector.latest[1:])
+
+    def start_workers(self) -> None:
+        """Start the collection workers, each where the state says it is (:meth:`run` does it when needed).
+
+        Call it before :meth:`run` to keep the workers' start-up out of a timing.
+        """
+        if not self.settings.collect.parallel or self._collector is not None:
+            return
+        state, collect = self.state, self.settings.collect
+        own = None
+        if state.episode > 0 or state.environment_rng is not None:
+            own = {"acting": state.streams.acting.state(), "starts": state.streams.starts.state(), "environment_rng": state.environment_rng}
+        others = list(state.worker_streams) + [None] * (collect.workers - 1 - len(state.worker_streams))
+        blueprint = WorkerBlueprint(spec=self.environment.spec, variant=self.variant, schedule=self.schedule, step_cap=self.step_cap, seed=state.streams.seed)
+        self._collector = make_collector(collect, blueprint, [own, *others[: collect.workers - 1]])
 
     def _next_boundary(self, stop: int) -> int:
         """The next episode after which something is logged, evaluated or saved (or ``stop``)."""
@@ -255,6 +260,13 @@ class Trainer:
 
     def _play_until(self, episode: int) -> None:
         """Play and learn every episode up to ``episode``, through the engine this trainer chose."""
+        if self._collector is not None:  # batches on one snapshot each, learned from in episode order
+            batch, values = self.settings.collect.batch_size, self.state.values
+            while self.state.episode < episode and not self.stop_requested:
+                count = min(batch, episode - self.state.episode)
+                for experience in self._collector.collect(values.q, values.state_visits, self.state.episode + 1, count):
+                    self.learn(experience)
+            return
         if self.engine == "compiled":
             self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode)
             return
@@ -263,7 +275,7 @@ class Trainer:
 
     def save_state(self, path) -> Path:
         """Write the whole state between two episodes, the environment's generator included."""
-        self.state.environment_rng = self.episodes.rng_state()
+        self._capture_streams()
         return self.state.save(path)
 
     # ------------------------------------------------------------ the loop
@@ -278,6 +290,7 @@ class Trainer:
         stop = settings.episodes if pause_at is None else min(int(pause_at), settings.episodes)
         snapshot_dir = Path(tempfile.mkdtemp(prefix="qtally-snapshots-"))
         try:
+            self.start_workers()
             while state.episode < stop:
                 self._play_until(self._next_boundary(stop))
                 episode = state.episode
@@ -286,6 +299,8 @@ class Trainer:
                     metrics = state.window.metrics()
                     metrics["coverage_sa"] = state.values.coverage()
                     self._log(metrics, episode)
+                    if self._collector is not None:  # timings: recorded, but not part of the state's history
+                        self.recorder.log_metrics(self._collector.rates.metrics(), episode)
                     if self.progress is not None:
                         self.progress.update(episode, metrics)
                     state.window = LogWindow()
@@ -301,9 +316,16 @@ class Trainer:
                     raise TrainingStopped(episode, self._write_checkpoint())
                 if settings.checkpoint_every and (episode % settings.checkpoint_every == 0 or last):
                     self._write_checkpoint()
-            state.environment_rng = self.episodes.rng_state()
+            self._capture_streams()
             self.recorder.flush()
+        except CollectionFailed as failure:  # the last whole batch is kept, so the run can be resumed
+            failure.checkpoint = self._write_checkpoint()
+            raise
         finally:
+            if self._collector is not None:  # its streams' places stay in the state; run() starts it again
+                self._capture_streams()
+                self._collector.close()
+                self._collector = None
             if getattr(self, "_owns_evaluation_environment", False):
                 self._evaluation_environment.close()
                 self._evaluation_environment = None

@@ -37,6 +37,12 @@ CASES = [
     (["schedule=linear", "schedule.epsilon=1.5"], ["schedule.epsilon=1.5 does not apply to schedule=linear", "start, end, decay_episodes"]),
 
     (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),
+    (["collect.workers=0"], ["collect.workers=0", "1 or more"]),
+    (["collect.workers=2", "collect.batch=0"], ["collect.batch=0", "positive number of episodes"]),
+    (["collect.backend=cluster"], ["collect.backend='cluster'", "local, ray"]),
+    (["collect.address=10.0.0.5:6379"], ["collect.address='10.0.0.5:6379'", "collect.backend=ray"]),
+    (["collect.workers=2", "collect.timeout=0"], ["collect.timeout=0", "positive number of seconds"]),
+    (["collect.workers=2", "engine=compiled"], ["engine=compiled plays in this process", "collect.workers=2", "choose one"]),
 ]
 
 # qtally-evaluate: the same checks reach it through its own validation, plus its own rules.

@@ -37,3 +37,20 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
 def test_bench_refuses_a_bad_repeat_count(tmp_path):
     result = subprocess.run([sys.executable, str(SCRIPT), "--repeats", "0", "--out", str(tmp_path)], capture_output=True, text=True, timeout=60)
     assert result.returncode == 2 and "--repeats must be at least 1" in result.stderr
+
+
+def test_quick_collection_benchmark_writes_its_table_and_json(tmp_path):
+    # Breakages caught: a worker count or simulator missing from the table, a rate that is not
+    # a positive finite number, a ratio not taken against one worker of the same backend.
+    script = SCRIPT.with_name("bench_collect.py")
+    out = tmp_path / "out"
+    result = subprocess.run([sys.executable, str(script), "--quick", "--step-ms", "0.2", "--out", str(out)], capture_output=True, text=True, timeout=600)
+    assert result.returncode == 0, result.stderr[-2000:]
+    data = json.loads((out / "bench_collect.json").read_text())
+    rows = data["rows"]
+    assert [(r["simulator"], r["workers"]) for r in rows] == [("ComputingDesk", 1), ("ComputingDesk", 2), ("WaitingDesk", 1), ("WaitingDesk", 2)]
+    for row in rows:
+        assert math.isfinite(row["episodes_per_second"]) and row["episodes_per_second"] > 0, row
+        assert row["of_one_worker"] == (1.0 if row["workers"] == 1 else row["episodes_per_second"] / rows[rows.index(row) - 1]["episodes_per_second"])
+    table = (out / "bench_collect.md").read_text()
+    assert table.count("| ComputingDesk | local |") == 2 and table.count("| WaitingDesk | local |") == 2

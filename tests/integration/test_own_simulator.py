@@ -45,7 +45,7 @@ def test_the_own_simulator_section_runs_as_written(tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "MLFLOW_TRACKING_URI"}
     env["PATH"] = os.pathsep.join([str(Path(sys.executable).parent), env.get("PATH", "")])
     commands = [line for kind, body in blocks if kind == "bash" for line in body.splitlines() if line.strip()]
-    assert sum(c.startswith("qtally-train") for c in commands) == 3 and sum(c.startswith("qtally-check") for c in commands) == 3
+    assert sum(c.startswith("qtally-train") for c in commands) == 4 and sum(c.startswith("qtally-check") for c in commands) == 3
     for command in commands:
         command = command.replace("episodes=20000", "episodes=200 eval_episodes=200")
         if command.startswith("qtally-check"):

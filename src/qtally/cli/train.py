@@ -159,6 +159,10 @@ def main() -> None:
         ignored = [a for a in sys.argv[1:] if a.split("=", 1)[0].lstrip("+~") not in _RESUME_KEYS]
         if ignored:
             fail(PROGRAM, f"resume=<run id> continues the run with the config it was started with; drop {' '.join(ignored)} (only {', '.join(_RESUME_KEYS)} apply)")
+    if "hydra/launcher=ray_loopback" in sys.argv[1:] and not any("init.address=" in a for a in sys.argv[1:]):
+        from ..engine.ray_collection import keep_ray_on_loopback
+
+        keep_ray_on_loopback()  # before the launcher imports Ray: its services then listen on 127.0.0.1 only
     if is_sweep(sys.argv[1:]):
         parent = next((a.split("=", 1)[1] for a in sys.argv[1:] if a.startswith("resume=")), None)
         if parent:

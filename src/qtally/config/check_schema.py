@@ -18,6 +18,7 @@ class CheckConfig:
     episodes: int = 100000  # the training length the time estimate is for
     probe_seconds: float = 2.0  # how long to play random episodes to measure the speed
     seed: int = 0
+    workers: int = 0  # the collection workers the estimate is for (0: this machine's core count)
 
 
 def register_check_schema() -> None:

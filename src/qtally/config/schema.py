@@ -13,7 +13,7 @@ from typing import Any, Optional
 from hydra.core.config_store import ConfigStore
 from omegaconf import MISSING
 
-__all__ = ["EnvConfig", "VariantConfig", "ScheduleConfig", "TrackingConfig", "PolicyFallbackConfig", "TrainConfig", "register_schema"]
+__all__ = ["EnvConfig", "VariantConfig", "ScheduleConfig", "TrackingConfig", "PolicyFallbackConfig", "CollectConfig", "TrainConfig", "register_schema"]
 
 
 @dataclass
@@ -71,12 +71,25 @@ class PolicyFallbackConfig:
 
 
 @dataclass
+class CollectConfig:
+    """Who plays the episodes of one run (qtally.engine.collection)."""
+
+    workers: int = 1  # 1: in this process; N: N worker processes, or N Ray actors with backend=ray
+    batch: Optional[int] = None  # episodes played on one snapshot of the policy; null: 1 with one worker, 8 per worker otherwise
+    backend: str = "local"  # local | ray
+    address: Optional[str] = None  # ray: a running cluster's address; null: a local Ray instance on loopback
+    worker_cpus: float = 1.0  # ray: CPUs reserved per worker
+    timeout: float = 600.0  # seconds a worker may take for its share of one batch
+
+
+@dataclass
 class TrainConfig:
     env: EnvConfig = MISSING
     variant: VariantConfig = MISSING
     schedule: ScheduleConfig = MISSING
     tracking: TrackingConfig = field(default_factory=TrackingConfig)
     policy_fallback: PolicyFallbackConfig = field(default_factory=PolicyFallbackConfig)
+    collect: CollectConfig = field(default_factory=CollectConfig)
     episodes: int = 5000
     gamma: float = 0.99
     seed: int = 0

@@ -12,7 +12,7 @@ from ..control.truncation import TRUNCATION_CHOICES
 from ..engine.compiled import ENGINE_CHOICES
 from ..policy.table_policy import FALLBACK_RULES
 
-__all__ = ["ConfigError", "validate", "validate_env", "schedule_parameters"]
+__all__ = ["ConfigError", "validate", "validate_env", "validate_collect", "schedule_parameters"]
 
 _SCHEDULE_PARAMETERS = {
     "constant": ("epsilon",),
@@ -110,3 +110,29 @@ def validate(cfg: DictConfig) -> None:
     for key in ("eval_every", "snapshot_every", "checkpoint_every"):
         if cfg[key] < 0:
             raise ConfigError(f"{key}={cfg[key]} must be 0 (off) or a positive episode count")
+    validate_collect(cfg.get("collect"), engine)
+
+
+def validate_collect(collect: DictConfig | None, engine: str) -> None:
+    """The ``collect`` block: how many workers play, where, and in what batches."""
+    if collect is None:
+        return
+    from ..engine.collection import BACKENDS
+
+    if collect.workers < 1:
+        raise ConfigError(f"collect.workers={collect.workers} must be 1 or more (1: episodes are played in this process)")
+    if collect.batch is not None and collect.batch < 1:
+        raise ConfigError(f"collect.batch={collect.batch} must be a positive number of episodes, or null for 8 per worker")
+    if collect.backend not in BACKENDS:
+        raise ConfigError(f"collect.backend={collect.backend!r} is unknown; choose one of {', '.join(BACKENDS)}")
+    if collect.address is not None and collect.backend != "ray":
+        raise ConfigError(f"collect.address={collect.address!r} is a Ray cluster's address; it needs collect.backend=ray")
+    if not collect.timeout > 0:
+        raise ConfigError(f"collect.timeout={collect.timeout} must be a positive number of seconds")
+    if not collect.worker_cpus > 0:
+        raise ConfigError(f"collect.worker_cpus={collect.worker_cpus} must be a positive number of CPUs")
+    if engine == "compiled" and (collect.workers > 1 or collect.backend != "local"):
+        raise ConfigError(
+            f"engine=compiled plays in this process and collect.workers={collect.workers} (backend {collect.backend}) plays in workers: "
+            "choose one (the compiled engine is the faster where it applies)"
+        )

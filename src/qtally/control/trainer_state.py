@@ -2,7 +2,8 @@
 
 A :class:`TrainerState` holds the tables (Q, visit counts, importance-sampling weights,
 per-state visits), the episode counter, the open logging window, the metric history, the
-last evaluation, and the state of every random stream, the environment's own included.
+last evaluation, and the state of every random stream, the environment's own included (and each collection
+worker's, when a run plays its episodes in parallel).
 Restoring it and playing on gives the same table, bit for bit, as never having stopped.
 
 File format ("qtally-trainer-state", version 1): a NumPy ``.npz`` of plain arrays plus
@@ -89,6 +90,9 @@ class TrainerState:
     final_evaluation: dict[str, float] = field(default_factory=dict)
     environment_rng: dict[str, Any] | None = None
     capped_episodes: int = 0
+    # Parallel collection (qtally.engine.collection): where workers 1..N-1 are in their own
+    # streams (worker 0 uses ``streams`` and ``environment_rng``); empty for a sequential run.
+    worker_streams: list[dict[str, Any]] = field(default_factory=list)
 
     @classmethod
     def fresh(cls, n_states: int, n_actions: int, seed: int, initial_value: float = 0.0) -> "TrainerState":
@@ -109,6 +113,7 @@ class TrainerState:
             "streams": self.streams.state(),
             "environment_rng": self.environment_rng,
             "capped_episodes": self.capped_episodes,
+            "worker_streams": self.worker_streams,
             "checksum": _checksum(arrays),
         }
         handle, temporary = tempfile.mkstemp(dir=path.parent, suffix=".npz.partial")
@@ -153,6 +158,7 @@ class TrainerState:
                 final_evaluation={key: float(value) for key, value in metadata["final_evaluation"].items()},
                 environment_rng=metadata["environment_rng"],
                 capped_episodes=int(metadata.get("capped_episodes", 0)),
+                worker_streams=list(metadata.get("worker_streams", [])),
             )
         except (KeyError, TypeError, ValueError) as exc:
             raise TrainerStateError(f"{name!r} has an incomplete trainer state ({exc})") from None

@@ -1,0 +1,117 @@
+"""One training episode played under a fixed acting policy, apart from learning from it.
+
+The trainer's sequential loop and every collection worker (:mod:`qtally.engine.collection`)
+play through :meth:`EpisodePlayer.play`, so an episode is the same whoever plays it: the
+same draws from the same streams (one acting uniform per decision, one start uniform per
+exploring start, the environment's own generator), the same epsilon and the same
+recorded behaviour probabilities. The player reads the Q table and the per-state visit
+counts it is given and changes neither: what the episode adds to the counts comes back
+in :attr:`Experience.visited`, and the learner applies it with the update.
+
+That split is what lets a batch of episodes be played in parallel with one snapshot of
+the acting policy and learned from afterwards, in episode order: the probabilities
+recorded are those of the snapshot actually used, so off-policy importance sampling
+stays exact. Played against the live tables one episode at a time, it is the
+sequential trainer.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..control.streams import UniformDraws, start_pair
+from ..policy.table_policy import epsilon_greedy_decision
+from .episodes import GymEpisodes, PlayedEpisode
+
+__all__ = ["Experience", "EpisodePlayer"]
+
+
+@dataclass  # plain, not frozen: it is built once per episode on the hot path
+class Experience:
+    """A played episode plus what the learner needs besides it.
+
+    ``episode``: the episode's number (1-based), which the schedule read; ``visited``: the
+    states whose visit counts the episode adds (the exploring start's state included),
+    in order; ``decisions``: how many actions the policy chose (a forced first action is
+    not one); ``epsilon_sum``: the sum of epsilon over those decisions.
+    """
+
+    episode: int
+    played: PlayedEpisode
+    visited: list[int]
+    decisions: int
+    epsilon_sum: float
+
+
+class EpisodePlayer:
+    """Plays training episodes of one environment for one variant and schedule."""
+
+    def __init__(self, episodes: GymEpisodes, variant, schedule, start_states: list[Any]):
+        self.episodes = episodes
+        self.variant = variant
+        self.schedule = schedule
+        self.start_states = list(start_states)
+        self.n_actions = episodes.environment.n_actions
+        self.per_state = bool(getattr(schedule, "per_state", False))
+
+    def play(self, q: np.ndarray, state_visits: np.ndarray, episode: int, acting: UniformDraws, starts: UniformDraws) -> Experience:
+        """Episode number ``episode``, acting on ``q`` and ``state_visits`` as they are (neither is changed).
+
+        Kept lean, since it runs for every step: epsilon is computed once per episode
+        unless the schedule depends on the state, and the greedy action comes from the
+        row as a list. The compiled kernel draws the same way (:mod:`qtally.engine.kernels`).
+        """
+        variant, schedule, n_actions = self.variant, self.schedule, self.n_actions
+        next_uniform = acting.next
+        visited: list[int] = []
+        remember = visited.append
+
+        start_observation = first_action = None
+        start_state = None
+        if variant.needs_start_control:
+            index, first_action = start_pair(starts.next(), len(self.start_states), n_actions)
+            start_observation = self.start_states[index]
+            start_state = self.episodes.environment.encoder.encode(start_observation)
+
+        if self.per_state:
+            behaviour_epsilon = variant.behaviour_epsilon
+            epsilons: list[float] = []
+            added: dict[int, int] = {} if start_state is None else {start_state: 1}  # this episode's visits so far
+
+            def choose(s: int) -> tuple[int, float]:
+                seen = added.get(s, 0)
+                epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s]) + seen))
+                added[s] = seen + 1
+                remember(s)
+                epsilons.append(epsilon)
+                return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
+        else:
+            epsilon = variant.behaviour_epsilon(schedule(episode, 0))
+            explore = epsilon / n_actions
+            exploit = explore + (1.0 - epsilon)
+
+            def choose(s: int) -> tuple[int, float]:
+                remember(s)
+                row = q[s].tolist()
+                greedy = row.index(max(row))
+                u = next_uniform()
+                if u < epsilon:
+                    action = min(int(u / epsilon * n_actions), n_actions - 1)
+                    return action, (exploit if action == greedy else explore)
+                return greedy, exploit
+
+        played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
+        decisions = len(visited)
+        epsilon_sum = 0.0
+        if self.per_state:
+            for e in epsilons:
+                epsilon_sum += e
+        else:
+            for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
+                epsilon_sum += epsilon
+        if start_state is not None:
+            visited.insert(0, start_state)
+        return Experience(episode=episode, played=played, visited=visited, decisions=decisions, epsilon_sum=epsilon_sum)
