@@ -105,3 +105,35 @@ def test_ray_actors_train_end_to_end_as_local_processes_do_and_listen_on_loopbac
     assert not [entry for entry in listening if not _is_loopback(entry[0])], listening
     np.testing.assert_array_equal(outcome.values.q, local.values.q)
     assert outcome.history == local.history
+
+
+SCRIPT = """
+from qtally.control.schedules import Constant
+from qtally.control.variants import make_variant
+from qtally.engine.collection import CollectSettings
+from qtally.envs.factory import EnvironmentSpec, make_environment
+from qtally.trainer import Trainer, TrainingSettings
+
+def train(seed):
+    spec = EnvironmentSpec(id="support.corridor:Corridor", max_episode_steps=20)
+    settings = TrainingSettings(episodes=200, seed=seed, eval_every=0, eval_episodes=2, engine="gym", collect=CollectSettings(workers=2))
+    return float(Trainer(make_environment(spec), make_variant("on_policy", 1.0, True, None), Constant(0.2), settings).run().values.q.sum())
+"""
+
+
+@pytest.mark.parametrize("caller", ["an unguarded script", "a joblib (loky) worker"])
+def test_workers_start_from_an_unguarded_script_and_inside_a_joblib_worker(tmp_path, caller):
+    # Breakages caught: spawn re-running the caller's script in every worker (an unguarded
+    # script trains again, recursively, and the worker dies starting), and a worker told to
+    # use loky's start method, which a plain child cannot set (every sweep job under
+    # hydra/launcher=joblib with collect.workers failed so).
+    import subprocess
+
+    body = SCRIPT + ("print(train(3))\n" if caller == "an unguarded script" else
+                     "if __name__ == '__main__':\n    from joblib import Parallel, delayed\n    print(Parallel(n_jobs=2)(delayed(train)(s) for s in (3, 4)))\n")
+    script = tmp_path / "caller.py"
+    script.write_text(body)
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(Path(__file__).parents[1]), os.environ.get("PYTHONPATH", "")]))
+    result = subprocess.run([sys.executable, str(script)], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr[-2000:]
+    assert result.stdout.count("\n") == 1 and "collection worker" not in result.stderr

@@ -259,25 +259,30 @@ def _one_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {first_line(exc)}" if not isinstance(exc, QtallyError) else str(exc)
 
 
-def _start_without_main(process) -> None:
-    """Start a spawned process without it running the caller's main script first.
+def _start_lean(process) -> None:
+    """Start a spawned worker without the caller's main script and start method.
 
-    ``spawn`` re-runs ``__main__`` in the child unless the script guards itself with
-    ``if __name__ == "__main__"``; a worker needs only qtally and the environment's module
-    (imported by name), so the main module is hidden from the child for the moment of the
-    start, and a user's unguarded script works too.
+    ``spawn`` tells the child to run the caller's ``__main__`` first (a script without an
+    ``if __name__ == "__main__"`` guard would then train again, recursively) and to set the
+    caller's start method (inside a joblib/loky sweep job that is ``loky``, which a plain
+    child cannot set). A worker needs neither: it imports qtally and the environment's
+    module by name. Both entries are left out of what the child is told, for this start only.
     """
-    main = sys.modules.get("__main__")
-    hidden = {name: main.__dict__.pop(name) for name in ("__file__", "__spec__") if main is not None and name in main.__dict__}
+    from multiprocessing import spawn
+
+    prepare = spawn.get_preparation_data
+
+    def lean(name):
+        data = prepare(name)
+        for key in ("init_main_from_path", "init_main_from_name", "start_method"):
+            data.pop(key, None)
+        return data
+
+    spawn.get_preparation_data = lean
     try:
-        if main is not None:
-            main.__spec__ = None
         process.start()
     finally:
-        if main is not None:
-            main.__dict__.update(hidden)
-            if "__spec__" not in hidden:
-                main.__dict__.pop("__spec__", None)
+        spawn.get_preparation_data = prepare
 
 
 class ProcessCollector(Collector):
@@ -292,7 +297,7 @@ class ProcessCollector(Collector):
             for k in range(self.workers):
                 parent, child = context.Pipe()
                 process = context.Process(target=_serve, args=(child, blueprint, k, saved[k]), name=f"qtally-collect-{k}", daemon=True)
-                _start_without_main(process)
+                _start_lean(process)
                 child.close()
                 self.processes.append(process)
                 self.connections.append(parent)
