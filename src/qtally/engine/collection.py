@@ -182,8 +182,12 @@ class WorkerRates:
     """Episodes per second of busy time, per worker, over one logging window."""
 
     def __init__(self, workers: int):
-        self.episodes = [0] * workers
-        self.seconds = [0.0] * workers
+        self.workers = workers
+        self._start_window()
+
+    def _start_window(self) -> None:
+        self.episodes = [0] * self.workers
+        self.seconds = [0.0] * self.workers
 
     def add(self, worker: int, episodes: int, seconds: float) -> None:
         self.episodes[worker] += episodes
@@ -192,7 +196,7 @@ class WorkerRates:
     def metrics(self) -> dict[str, float]:
         """``collect_rate_w<k>`` for each worker that played in the window; the window starts again."""
         out = {f"collect_rate_w{k}": n / s for k, (n, s) in enumerate(zip(self.episodes, self.seconds)) if n and s > 0}
-        self.__init__(len(self.episodes))
+        self._start_window()
         return out
 
 

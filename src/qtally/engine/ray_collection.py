@@ -65,7 +65,7 @@ class RayCollector(Collector):
                 raise QtallyError(f"collect.backend=ray: could not start or reach {where} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})") from None
             self.started_here = True
         actor = ray.remote(num_cpus=settings.worker_cpus, max_restarts=0)(EpisodeWorker)
-        self.actors = [actor.options(name=None).remote(blueprint, k, saved[k]) for k in range(self.workers)]
+        self.actors = [actor.remote(blueprint, k, saved[k]) for k in range(self.workers)]
         try:
             self._wait({k: a.state.remote() for k, a in enumerate(self.actors)}, "starting")
         except BaseException:
