@@ -175,7 +175,8 @@ class Trainer:
         """One episode on the gym path: played against the live tables, then learned from."""
         state = self.state
         streams = state.streams
-        self.learn(self.player.play(state.values.q, state.values.state_visits, state.episode + 1, streams.acting, streams.starts))
+        values = state.values
+        self.learn(self.player.play(values.q, values.state_visits, state.episode + 1, streams.acting, streams.starts, values.greedy))
 
     def learn(self, experience: Experience) -> None:
         """Update the tables from the next episode, played by this trainer or by a collection worker.
@@ -190,8 +191,9 @@ class Trainer:
         state.episode = episode = experience.episode
         values = state.values
         q, state_visits = values.q, values.state_visits
+        counts = values.state_visit_counts
         for s in experience.visited:
-            state_visits[s] += 1
+            counts[s] += 1
         played = experience.played
         tail = 0.0
         if played.truncated and self.settings.truncation != "as_terminal":

@@ -49,6 +49,25 @@ class ActionValues:
         """
         return tuple(memoryview(array).cast("B").cast(array.dtype.char) for array in (self.q, self.visits, self.cumulative_weights))
 
+    @cached_property
+    def state_visit_counts(self) -> memoryview:
+        """``state_visits`` as a memoryview, for the same reason as :attr:`flat`."""
+        return memoryview(self.state_visits).cast("B").cast(self.state_visits.dtype.char)
+
+    @cached_property
+    def greedy(self) -> list[int]:
+        """The greedy action of every state (lowest index on ties), read in constant time while acting.
+
+        Built from ``q`` when first asked for; the gym path's updates keep it in step entry
+        by entry (:mod:`qtally.control.variants`). Whatever writes ``q`` another way calls
+        :meth:`forget_greedy` afterwards.
+        """
+        return self.q.argmax(axis=1).tolist()
+
+    def forget_greedy(self) -> None:
+        self.__dict__.pop("greedy", None)
+
     def coverage(self) -> float:
         """Fraction of state-action pairs whose estimate has absorbed at least one return."""
         return float(np.count_nonzero(self.visits)) / self.visits.size
+

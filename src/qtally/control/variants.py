@@ -30,15 +30,73 @@ from .episodes import EpisodeArrays
 __all__ = ["EpisodeArrays", "ExploringStarts", "OnPolicy", "OffPolicy", "make_variant", "VARIANT_NAMES"]
 
 
-def _first_visit_times(keys: list[int]) -> dict[int, int]:
-    first: dict[int, int] = {}
-    for t, key in enumerate(keys):
-        first.setdefault(key, t)
-    return first
+def _backward_update(values: ActionValues, states: list, actions: list, rewards: list, behaviour: list, tail_value: float,
+                     gamma: float, first_visit: bool, step_size: float | None, weighted: bool) -> int:
+    """Both updates' backward loop over one episode's lists; returns how many time steps were used.
+
+    ``G = r + gamma * G`` from the last step back, each counted visit updated as it goes:
+    scalar Python on flat memoryviews beats array calls at these lengths (the array form,
+    :func:`~qtally.control.returns.discounted_returns`, is the reference in the tests).
+    ``weighted``: the off-policy update, with step ``W / C`` (or ``min(1, step * W)``),
+    stopped after the first step whose action the greedy target would not take.
+    The greedy list (:attr:`ActionValues.greedy`) is kept in step here, inline: this runs
+    for every step of every episode, and a call per update cost a tenth of the loop.
+    """
+    if not states:
+        return 0
+    n_actions = values.n_actions
+    keys = [s * n_actions + a for s, a in zip(states, actions)]
+    last = len(keys) - 1
+    # Filled from the end, so each key keeps the earliest time it occurs.
+    first = dict(zip(reversed(keys), range(last, -1, -1))) if first_visit else None
+    q, visits, weights_sum = values.flat
+    greedy = values.greedy
+    g = tail_value
+    w = 1.0
+    for t in range(last, -1, -1):
+        g = gamma * g + rewards[t]
+        key = keys[t]
+        state = states[t]
+        if first is None or first[key] == t:
+            visits[key] += 1
+            if weighted:
+                weights_sum[key] += w
+                step = w / weights_sum[key] if step_size is None else min(1.0, step_size * w)
+            else:
+                step = 1.0 / visits[key] if step_size is None else step_size
+            old = q[key]
+            q[key] = new = old + step * (g - old)
+            # Keep greedy[state] the lowest-index best action; the row is read again only when
+            # the greedy action's own value drops.
+            action, best = actions[t], greedy[state]
+            if action == best:
+                if new < old:
+                    row_start = key - action
+                    row = q[row_start : row_start + n_actions].tolist()
+                    greedy[state] = row.index(max(row))
+            else:
+                incumbent = q[key - action + best]
+                if new > incumbent or (new == incumbent and action < best):
+                    greedy[state] = action
+        if weighted:
+            if actions[t] != greedy[state]:  # the greedy target (lowest index on ties) would not take it
+                return last - t + 1
+            w /= behaviour[t]  # pi(a|s) = 1 for the target action
+    return last + 1
+
+
+class _ArrayUpdate:
+    """``update`` from an episode's arrays, through the subclass's ``update_lists``."""
+
+    def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
+        """Update from an episode's arrays; return how many time steps were used."""
+        return self.update_lists(
+            values, episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist(), episode.behaviour_probabilities.tolist(), episode.tail_value
+        )
 
 
 @dataclass(frozen=True)
-class _EvaluationUpdate:
+class _EvaluationUpdate(_ArrayUpdate):
     """Shared by exploring starts and on-policy: average the returns that follow each visit.
 
     A plain backward loop, G = r + gamma * G, updating each counted visit as it goes:
@@ -51,31 +109,9 @@ class _EvaluationUpdate:
     first_visit: bool = True
     step_size: float | None = None
 
-    def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
-        """Update from an episode's arrays; return how many time steps were used."""
-        return self.update_lists(
-            values, episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist(), episode.behaviour_probabilities.tolist(), episode.tail_value
-        )
-
     def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float) -> int:
         """The same update from plain lists (what the trainer holds after an episode)."""
-        if not states:
-            return 0
-        n_actions = values.n_actions
-        keys = [s * n_actions + a for s, a in zip(states, actions)]
-        first = _first_visit_times(keys) if self.first_visit else None
-        q, visits, _ = values.flat
-        gamma, step_size = self.gamma, self.step_size
-        g = tail_value
-        for t in range(len(keys) - 1, -1, -1):
-            g = gamma * g + rewards[t]
-            key = keys[t]
-            if first is not None and first[key] != t:
-                continue
-            visits[key] += 1
-            step = 1.0 / visits[key] if step_size is None else step_size
-            q[key] += step * (g - q[key])
-        return len(keys)
+        return _backward_update(values, states, actions, rewards, probabilities, tail_value, self.gamma, self.first_visit, self.step_size, False)
 
 
 @dataclass(frozen=True)
@@ -109,7 +145,7 @@ class OnPolicy(_EvaluationUpdate):
 
 
 @dataclass(frozen=True)
-class OffPolicy:
+class OffPolicy(_ArrayUpdate):
     """Weighted importance sampling towards the greedy target policy."""
 
     gamma: float
@@ -126,39 +162,9 @@ class OffPolicy:
         """The target policy is greedy: the best value of the state reached."""
         return float(np.max(q_row))
 
-    def update(self, values: ActionValues, episode: EpisodeArrays) -> int:
-        """Run the weighted-IS backward loop; return how many time steps were used."""
-        return self.update_lists(
-            values, episode.states.tolist(), episode.actions.tolist(), episode.rewards.tolist(), episode.behaviour_probabilities.tolist(), episode.tail_value
-        )
-
     def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, behaviour: list, tail_value: float) -> int:
         """The same update from plain lists (what the trainer holds after an episode)."""
-        if not states:
-            return 0
-        n_actions = values.n_actions
-        keys = [s * n_actions + a for s, a in zip(states, actions)]
-        first = _first_visit_times(keys) if self.first_visit else None
-        q, visits, weights_sum = values.flat
-        gamma, step_size = self.gamma, self.step_size
-        g = tail_value
-        w = 1.0
-        used = 0
-        for t in range(len(states) - 1, -1, -1):
-            key = keys[t]
-            g = gamma * g + rewards[t]
-            if first is None or first[key] == t:
-                weights_sum[key] += w
-                visits[key] += 1
-                step = w / weights_sum[key] if step_size is None else min(1.0, step_size * w)
-                q[key] += step * (g - q[key])
-            used += 1
-            row_start = key - actions[t]
-            row = q[row_start : row_start + n_actions].tolist()
-            if actions[t] != row.index(max(row)):  # the greedy target (lowest index on ties) would not take a
-                break
-            w /= behaviour[t]  # pi(a|s) = 1 for the target action
-        return used
+        return _backward_update(values, states, actions, rewards, behaviour, tail_value, self.gamma, self.first_visit, self.step_size, True)
 
 
 VARIANT_NAMES = ("exploring_starts", "on_policy", "off_policy")

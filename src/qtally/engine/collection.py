@@ -171,7 +171,8 @@ class EpisodeWorker:
     def play(self, q: np.ndarray, state_visits: np.ndarray, episodes: list[int]) -> tuple[list[Experience], dict[str, Any], float]:
         """Play ``episodes`` in order on this snapshot: ``(experiences, state afterwards, seconds busy)``."""
         began = time.perf_counter()
-        played = [self.player.play(q, state_visits, episode, self.acting, self.starts) for episode in episodes]
+        greedy = q.argmax(axis=1).tolist()  # once per snapshot, not per episode
+        played = [self.player.play(q, state_visits, episode, self.acting, self.starts, greedy) for episode in episodes]
         return played, self.state(), time.perf_counter() - began
 
     def close(self) -> None:

@@ -176,6 +176,7 @@ class CompiledEpisodes:
                 streams.starts.advance(start_used)
             state.episode += done
             done_total += done
+        values.forget_greedy()  # the kernel wrote q directly
         state.window = _window_from(window)
         state.capped_episodes += int(window[5] - capped_before)
         return int(window[2] - length_before)

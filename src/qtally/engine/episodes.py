@@ -94,8 +94,9 @@ class GymEpisodes:
         self._pending_seed: int | None = None
         self._core, self._time_limit = _bookkeeping_free(environment.env)
         encoder = environment.encoder
-        # A Discrete space numbered from 0 encodes as int itself: one call fewer per step.
-        self._encode = int if isinstance(encoder, DiscreteEncoder) and encoder.start == 0 else encoder.encode
+        # A Discrete space numbered from 0 encodes as int itself, and a tuple of parts through
+        # its written-out function: one call fewer per step either way.
+        self._encode = int if isinstance(encoder, DiscreteEncoder) and encoder.start == 0 else getattr(encoder, "fast_encode", encoder.encode)
 
     def seed(self, seed: int | None) -> None:
         """Seed the environment's generator at the next reset (``None``: leave it as it is)."""

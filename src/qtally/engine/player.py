@@ -23,13 +23,13 @@ from typing import Any
 import numpy as np
 
 from ..control.streams import UniformDraws, start_pair
-from ..policy.table_policy import epsilon_greedy_decision
+from ..policy.table_policy import epsilon_greedy_choice
 from .episodes import GymEpisodes, PlayedEpisode
 
 __all__ = ["Experience", "EpisodePlayer"]
 
 
-@dataclass  # plain, not frozen: it is built once per episode on the hot path
+@dataclass(slots=True)  # plain, not frozen: it is built once per episode on the hot path
 class Experience:
     """A played episode plus what the learner needs besides it.
 
@@ -57,17 +57,19 @@ class EpisodePlayer:
         self.n_actions = episodes.environment.n_actions
         self.per_state = bool(getattr(schedule, "per_state", False))
 
-    def play(self, q: np.ndarray, state_visits: np.ndarray, episode: int, acting: UniformDraws, starts: UniformDraws) -> Experience:
+    def play(self, q: np.ndarray, state_visits: np.ndarray, episode: int, acting: UniformDraws, starts: UniformDraws, greedy: list[int] | None = None) -> Experience:
         """Episode number ``episode``, acting on ``q`` and ``state_visits`` as they are (neither is changed).
 
+        ``greedy``: the greedy action of each row of ``q`` (lowest index on ties), when the
+        caller keeps it (:attr:`ActionValues.greedy`); else it is read off ``q`` here.
         Kept lean, since it runs for every step: epsilon is computed once per episode
-        unless the schedule depends on the state, and the greedy action comes from the
-        row as a list. The compiled kernel draws the same way (:mod:`qtally.engine.kernels`).
+        unless the schedule depends on the state, and acting is a list lookup and one
+        uniform. The compiled kernel draws the same way (:mod:`qtally.engine.kernels`).
         """
         variant, schedule, n_actions = self.variant, self.schedule, self.n_actions
+        if greedy is None:
+            greedy = q.argmax(axis=1).tolist()
         next_uniform = acting.next
-        visited: list[int] = []
-        remember = visited.append
 
         start_observation = first_action = None
         start_state = None
@@ -85,26 +87,25 @@ class EpisodePlayer:
                 seen = added.get(s, 0)
                 epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s]) + seen))
                 added[s] = seen + 1
-                remember(s)
                 epsilons.append(epsilon)
-                return epsilon_greedy_decision(q[s].tolist(), epsilon, next_uniform())
+                return epsilon_greedy_choice(greedy[s], n_actions, epsilon, next_uniform())
         else:
             epsilon = variant.behaviour_epsilon(schedule(episode, 0))
             explore = epsilon / n_actions
             exploit = explore + (1.0 - epsilon)
 
             def choose(s: int) -> tuple[int, float]:
-                remember(s)
-                row = q[s].tolist()
-                greedy = row.index(max(row))
+                best = greedy[s]
                 u = next_uniform()
                 if u < epsilon:
                     action = min(int(u / epsilon * n_actions), n_actions - 1)
-                    return action, (exploit if action == greedy else explore)
-                return greedy, exploit
+                    return action, (exploit if action == best else explore)
+                return best, exploit
 
         played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
-        decisions = len(visited)
+        # Every state the episode acted in is a visit, the exploring start's included; only
+        # a forced first action is not a decision of the policy.
+        decisions = played.length - (start_state is not None)
         epsilon_sum = 0.0
         if self.per_state:
             for e in epsilons:
@@ -112,6 +113,4 @@ class EpisodePlayer:
         else:
             for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
                 epsilon_sum += epsilon
-        if start_state is not None:
-            visited.insert(0, start_state)
-        return Experience(episode=episode, played=played, visited=visited, decisions=decisions, epsilon_sum=epsilon_sum)
+        return Experience(episode=episode, played=played, visited=played.states, decisions=decisions, epsilon_sum=epsilon_sum)

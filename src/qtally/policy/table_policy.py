@@ -55,6 +55,7 @@ __all__ = [
     "epsilon_soft_probabilities",
     "deterministic_probabilities",
     "epsilon_greedy_decision",
+    "epsilon_greedy_choice",
     "sample_action",
     "TablePolicy",
     "Fallback",
@@ -152,8 +153,11 @@ def epsilon_greedy_decision(q_row: list[float], epsilon: float, u: float) -> tup
 
     Plain Python on a list: this runs once per time step.
     """
-    n_actions = len(q_row)
-    greedy = q_row.index(max(q_row))
+    return epsilon_greedy_choice(q_row.index(max(q_row)), len(q_row), epsilon, u)
+
+
+def epsilon_greedy_choice(greedy: int, n_actions: int, epsilon: float, u: float) -> tuple[int, float]:
+    """:func:`epsilon_greedy_decision` when the row's greedy action is already known."""
     if u < epsilon:
         action = min(int(u / epsilon * n_actions), n_actions - 1)
     else:
