@@ -29,7 +29,7 @@ from .control.action_values import ActionValues
 from .control.streams import evaluation_base, evaluation_seeds
 from .control.trainer_state import LogWindow, TrainerState
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
-from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, make_collector
+from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, compiled_beside_workers, make_collector, stream_places
 from .engine.episodes import GymEpisodes
 from .engine.player import EpisodePlayer, Experience
 from .envs.factory import TabularEnvironment, make_environment
@@ -124,10 +124,7 @@ class Trainer:
         requested = settings.engine
         if settings.collect.parallel:
             if requested == "compiled":
-                raise ValueError(
-                    f"engine=compiled plays in this process and collect.workers={settings.collect.workers} plays in workers: "
-                    "choose one (the compiled engine is the faster where it applies)"
-                )
+                raise ValueError(compiled_beside_workers(settings.collect))
             requested = "gym"
         self.engine, self.engine_reason, self.episodes = choose_engine(requested, environment, variant, schedule, self.step_cap, self.start_states)
         if settings.collect.parallel:
@@ -246,7 +243,7 @@ class Trainer:
         state, collect = self.state, self.settings.collect
         own = None
         if state.episode > 0 or state.environment_rng is not None:
-            own = {"acting": state.streams.acting.state(), "starts": state.streams.starts.state(), "environment_rng": state.environment_rng}
+            own = stream_places(state.streams.acting, state.streams.starts, state.environment_rng)
         others = list(state.worker_streams) + [None] * (collect.workers - 1 - len(state.worker_streams))
         blueprint = WorkerBlueprint(spec=self.environment.spec, variant=self.variant, schedule=self.schedule, step_cap=self.step_cap, seed=state.streams.seed)
         self._collector = make_collector(collect, blueprint, [own, *others[: collect.workers - 1]])
@@ -272,8 +269,13 @@ class Trainer:
         if self.engine == "compiled":
             self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode)
             return
-        while self.state.episode < episode and not self.stop_requested:
-            self.play_and_learn()
+        # play_and_learn, with the lookups hoisted out of the loop: on short episodes (a
+        # Blackjack hand is one or two steps) the per-episode glue is a fair share of the time.
+        state, play, learn = self.state, self.player.play, self.learn
+        values, acting, starts = state.values, state.streams.acting, state.streams.starts
+        q, state_visits, greedy = values.q, values.state_visits, values.greedy
+        while state.episode < episode and not self.stop_requested:
+            learn(play(q, state_visits, state.episode + 1, acting, starts, greedy))
 
     def save_state(self, path) -> Path:
         """Write the whole state between two episodes, the environment's generator included."""

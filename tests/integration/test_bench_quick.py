@@ -23,6 +23,8 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
     for row in data["gym"]:
         for key in ("same_episodes_ratio", "random_actions_steps_ratio", "train_steps_per_s"):
             assert math.isfinite(row[key]) and row[key] > 0, (row, key)
+        low, high = row["same_episodes_ratio_range"]  # the median of the per-repeat ratios lies among them
+        assert low <= row["same_episodes_ratio"] <= high, row
     for row in data["compiled"]:
         assert row["over_gym"] > 1.0, row  # compiled code slower than Python would be a broken engine, not noise
         assert 0 < row["of_reference"] and math.isfinite(row["of_reference"])

@@ -117,7 +117,7 @@ def validate_collect(collect: DictConfig | None, engine: str) -> None:
     """The ``collect`` block: how many workers play, where, and in what batches."""
     if collect is None:
         return
-    from ..engine.collection import BACKENDS
+    from ..engine.collection import BACKENDS, compiled_beside_workers
 
     if collect.workers < 1:
         raise ConfigError(f"collect.workers={collect.workers} must be 1 or more (1: episodes are played in this process)")
@@ -132,7 +132,4 @@ def validate_collect(collect: DictConfig | None, engine: str) -> None:
     if not collect.worker_cpus > 0:
         raise ConfigError(f"collect.worker_cpus={collect.worker_cpus} must be a positive number of CPUs")
     if engine == "compiled" and (collect.workers > 1 or collect.backend != "local"):
-        raise ConfigError(
-            f"engine=compiled plays in this process and collect.workers={collect.workers} (backend {collect.backend}) plays in workers: "
-            "choose one (the compiled engine is the faster where it applies)"
-        )
+        raise ConfigError(compiled_beside_workers(collect))

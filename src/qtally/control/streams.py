@@ -78,11 +78,17 @@ class UniformDraws:
         self._position += 1
         return u
 
-    def window(self, n: int) -> np.ndarray:
-        """The next ``n`` uniforms, without consuming them (call :meth:`advance` with the count used)."""
+    def window(self, n: int, block: int = _BLOCK) -> np.ndarray:
+        """Every uniform left in the current block, at least ``n``, without consuming them.
+
+        With fewer than ``n`` left, a new block of ``max(n, block)`` starts where the reading
+        is. Call :meth:`advance` with the count used. The whole rest of the block is handed
+        over, not just ``n``: a caller that uses a few hundred numbers per call (the compiled
+        engine between two logging steps) would otherwise refill a large block every call.
+        """
         if self._array.shape[0] - self._position < n:
-            self._restart_here(max(int(n), _BLOCK))
-        return self._array[self._position : self._position + n]
+            self._restart_here(max(int(n), int(block)))
+        return self._array[self._position :]
 
     def advance(self, used: int) -> None:
         if not 0 <= used <= self._array.shape[0] - self._position:

@@ -55,11 +55,26 @@ __all__ = [
     "worker_streams",
     "share_of",
     "make_collector",
+    "compiled_beside_workers",
+    "stream_places",
     "BACKENDS",
 ]
 
 BACKENDS = ("local", "ray")
 EPISODES_PER_WORKER = 8  # the default batch: enough work per snapshot to hide the messages, few enough to act on fresh values
+
+
+def compiled_beside_workers(collect) -> str:
+    """Why ``engine=compiled`` and collection workers (``collect``: its ``workers`` and ``backend``) exclude each other."""
+    return (
+        f"engine=compiled plays in this process and collect.workers={collect.workers} (backend {collect.backend}) plays in workers: "
+        "choose one (the compiled engine is the faster where it applies)"
+    )
+
+
+def stream_places(acting: UniformDraws, starts: UniformDraws, environment_rng: dict | None) -> dict[str, Any]:
+    """Where one player's random streams are (JSON-able): what a checkpoint keeps for a worker."""
+    return {"acting": acting.state(), "starts": starts.state(), "environment_rng": environment_rng}
 
 
 @dataclass(frozen=True)
@@ -166,7 +181,7 @@ class EpisodeWorker:
 
     def state(self) -> dict[str, Any]:
         """Where this worker's streams are (JSON-able): what a checkpoint keeps for it."""
-        return {"acting": self.acting.state(), "starts": self.starts.state(), "environment_rng": self.episodes.rng_state()}
+        return stream_places(self.acting, self.starts, self.episodes.rng_state())
 
     def play(self, q: np.ndarray, state_visits: np.ndarray, episodes: list[int]) -> tuple[list[Experience], dict[str, Any], float]:
         """Play ``episodes`` in order on this snapshot: ``(experiences, state afterwards, seconds busy)``."""

@@ -29,7 +29,7 @@ from ..envs.outcomes import OutcomeTable
 __all__ = ["ENGINE_CHOICES", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "variant_code", "time_limit_of"]
 
 ENGINE_CHOICES = ("auto", "gym", "compiled")
-_WINDOW = 1 << 16  # uniforms per kernel call and stream (512 KiB): few refills, and a fixed size whatever the run length
+_WINDOW = 1 << 16  # uniforms per block of each stream the kernel reads (512 KiB): few refills, and a fixed size whatever the run length
 
 
 class EngineUnavailable(ValueError):
@@ -146,14 +146,14 @@ class CompiledEpisodes:
         window = _window_array(state.window)
         length_before = window[2]
         capped_before = window[5]
-        size = max(_WINDOW, 2 * (self.max_length + 1))
+        need = 2 * (self.max_length + 1)  # enough for one more episode whatever its length
         empty = np.zeros(0)
         done_total = 0
         first_call = not self._compiled_for
         while done_total < n_episodes or first_call:
-            env_u = self._draws.window(size)
-            acting_u = streams.acting.window(size)
-            start_u = streams.starts.window(min(size, n_episodes - done_total)) if code == k.EXPLORING_STARTS else empty
+            env_u = self._draws.window(need, _WINDOW)
+            acting_u = streams.acting.window(need, _WINDOW)
+            start_u = streams.starts.window(1, _WINDOW) if code == k.EXPLORING_STARTS else empty
             started = time.perf_counter()
             done, env_used, acting_used, start_used = k.learn_episodes(
                 0 if first_call else n_episodes - done_total, state.episode,
