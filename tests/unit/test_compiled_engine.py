@@ -109,3 +109,16 @@ def test_compiled_insists_and_auto_falls_back_with_a_reason():
     trainer = Trainer(make_environment(binned), make_variant("on_policy", 1.0, True, None), Constant(0.1), TrainingSettings(episodes=5))
     assert trainer.engine == "gym" and "no transition model" not in trainer.engine_reason and trainer.engine_reason
     assert Trainer(make_environment(FROZEN_8X8), make_variant("on_policy", 1.0, True, None), Constant(0.1), TrainingSettings(episodes=5)).engine == "compiled"
+
+
+def test_the_compiled_engine_draws_each_stream_block_once_not_once_per_call(monkeypatch):
+    # Between two logging steps a kernel call uses a few hundred uniforms of a 64k block.
+    # Breakage caught: handing the kernel only a fixed-size window, so every call refilled
+    # (regenerated) both blocks: 7x slower on Blackjack, and invisible to every equality test.
+    from qtally.control.streams import UniformDraws
+
+    refills = []
+    original = UniformDraws._restart_here
+    monkeypatch.setattr(UniformDraws, "_restart_here", lambda self, size: (refills.append(size), original(self, size))[1])
+    _train(FROZEN_8X8, "on_policy", True, Constant(0.2), "compiled", episodes=3000)  # 30 calls of 100 episodes
+    assert 0 < len(refills) <= 12, len(refills)  # 3000 episodes of about 30 steps: a few blocks per stream, not 2 per call
