@@ -7,8 +7,10 @@ JSON file (``--out``, default ``bench-results/``):
    (a) a loop that replays the *same episodes* (the run's own starts and actions, the same
    seeded environment, nothing else done) and (b) a loop that steps the same wrapped
    environment with uniformly random actions. (a) is the overhead qtally adds to the
-   environment's own work; (b) is reported too, but a random policy plays episodes of
-   another length (on Blackjack it hits more), so it mixes overhead with a different workload.
+   environment's own work; the run and its replay are timed in alternating slices, so a
+   slow spell of a shared machine falls on both sides. (b) is reported too, but a random
+   policy plays episodes of another length (on Blackjack it hits more), so it mixes
+   overhead with a different workload.
 2. **compiled vs gym.** The compiled engine's steps per second against the gym path's, and
    against a minimal compiled kernel written here (``qtally.engine.kernels.reference_kernel``:
    epsilon-greedy steps on the same table, nothing recorded or learned), the limit of this
@@ -109,24 +111,30 @@ def _recorded_episodes(name: str, variant_name: str, episodes: int):
     return trainer.environment.spec, trainer.state.streams.env_seed, played
 
 
-def _bare_replay(spec, env_seed: int, played) -> float:
-    """Seconds to step the same wrapped environment through the same episodes, nothing else."""
-    from qtally.envs.factory import make_environment
+class _BareReplay:
+    """Steps the same wrapped environment through a run's recorded episodes, nothing else, a slice at a time."""
 
-    environment = make_environment(spec)
-    env, start_control = environment.env, environment.start_control
-    seed = env_seed
-    start = time.perf_counter()
-    for start_observation, actions in played:
-        if start_observation is not None:
-            start_control.reset_to(start_observation, seed=seed)
-        else:
-            env.reset(seed=seed)
-        seed = None
-        step = env.step
-        for action in actions:
-            step(action)
-    return time.perf_counter() - start
+    def __init__(self, spec, env_seed: int, played):
+        from qtally.envs.factory import make_environment
+
+        environment = make_environment(spec)
+        self.env, self.start_control = environment.env, environment.start_control
+        self.seed, self.played = env_seed, played
+
+    def seconds(self, first: int, stop: int) -> float:
+        """Seconds to play recorded episodes ``first`` to ``stop - 1``, continuing the environment's stream."""
+        env, start_control = self.env, self.start_control
+        start = time.perf_counter()
+        for start_observation, actions in self.played[first:stop]:
+            if start_observation is not None:
+                start_control.reset_to(start_observation, seed=self.seed)
+            else:
+                env.reset(seed=self.seed)
+            self.seed = None
+            step = env.step
+            for action in actions:
+                step(action)
+        return time.perf_counter() - start
 
 
 def _bare_random(spec, episodes: int) -> tuple[float, int]:
@@ -151,26 +159,45 @@ def _bare_random(spec, episodes: int) -> tuple[float, int]:
     return time.perf_counter() - start, steps
 
 
-def gym_against_bare(scale: float, repeats: int) -> list[dict]:
-    """Each repeat times a training run and, right after it, both bare loops: the ratio is taken per repeat.
+def _interleaved(name: str, variant_name: str, episodes: int, replay: "_BareReplay", chunks: int):
+    """Seconds of one training run and of its bare replay, timed in ``chunks`` alternating slices.
 
-    The median of those paired ratios is what the table reports; a slow minute of the
-    machine then slows both sides of one ratio instead of one side of the medians.
+    The run pauses between slices (``Trainer.run(pause_at=...)``, as a checkpoint does) and
+    the bare loop plays the same slice of episodes; which side goes first alternates. A
+    slow spell of a shared machine (its speed drifts by a third within seconds on the
+    virtual machines this was written on) then lands on both sides of the ratio.
+    """
+    trainer = _trainer(name, variant_name, episodes, "gym")
+    bounds = [round(episodes * k / chunks) for k in range(chunks + 1)]
+    train_seconds = replay_seconds = 0.0
+    outcome = None
+    for k, (first, stop) in enumerate(zip(bounds, bounds[1:])):
+        if k % 2:
+            replay_seconds += replay.seconds(first, stop)
+        start = time.perf_counter()
+        outcome = trainer.run(pause_at=stop)
+        train_seconds += time.perf_counter() - start
+        if not k % 2:
+            replay_seconds += replay.seconds(first, stop)
+    return train_seconds, replay_seconds, outcome
+
+
+def gym_against_bare(scale: float, repeats: int) -> list[dict]:
+    """Each repeat times a training run against a bare replay of its episodes, interleaved, and a random-action loop.
+
+    The median of the per-repeat ratios is what the table reports.
     """
     rows = []
     for name in ENVS:
         episodes = max(10, int(GYM_EPISODES[name] * scale))
+        chunks = 20 if episodes >= 2000 else 2
         for variant_name in VARIANTS:
             spec, env_seed, played = _recorded_episodes(name, variant_name, episodes)
             _trainer(name, variant_name, min(episodes, 10), "gym").run()  # warm-up
             train_times, same, random_steps_ratio, random_episodes_ratio = [], [], [], []
             for _ in range(repeats):
-                trainer = _trainer(name, variant_name, episodes, "gym")
-                start = time.perf_counter()
-                outcome = trainer.run()
-                train_seconds = time.perf_counter() - start
+                train_seconds, replay_seconds, outcome = _interleaved(name, variant_name, episodes, _BareReplay(spec, env_seed, played), chunks)
                 steps = _steps(outcome)
-                replay_seconds = _bare_replay(spec, env_seed, played)
                 random_seconds, random_steps = _bare_random(spec, episodes)
                 train_times.append(train_seconds)
                 same.append(replay_seconds / train_seconds)

@@ -95,6 +95,34 @@ def test_the_player_acts_on_its_snapshot_and_changes_neither_table():
         assert p == pytest.approx(0.3 / 4 + (0.7 if a == greedy else 0.0))
 
 
+@pytest.mark.parametrize("step_cap", [100, 7])
+def test_the_sources_inline_acting_plays_what_the_called_chooser_plays(step_cap):
+    # The episode source runs EpsilonGreedyActing's lines inside its step loop and resets
+    # the core environment after its first, seeded reset. Played instead through a plain
+    # function (the general path, every reset through the wrappers' chain), the same seeds
+    # must give the same episodes. Breakages caught: an inline copy that draws or decides
+    # differently, a probability computed another way, a reset shortcut that changes the
+    # environment's stream or the cap.
+    from qtally.policy.table_policy import EpsilonGreedyActing
+
+    q = np.random.default_rng(1).normal(size=(16, 4))
+    greedy = q.argmax(axis=1).tolist()
+
+    def episodes(called: bool) -> list:
+        source = GymEpisodes(make_environment(SLIPPERY_LAKE), step_cap)
+        source.seed(11)
+        acting = EpsilonGreedyActing(greedy, 0.25, 4, RandomStreams(4).acting.next)
+        choose = (lambda state: acting(state)) if called else acting
+        if called:
+            source._core = source.environment.env  # step and reset through every wrapper
+        played = [source.play(choose) for _ in range(30)]
+        return [(p.states, p.actions, p.rewards, p.probabilities, p.truncated, p.capped, p.final_state) for p in played]
+
+    inline, called = episodes(False), episodes(True)
+    assert inline == called
+    assert any(len(states) > 1 for states, *_ in inline)
+
+
 def test_shares_cover_a_batch_once_in_round_robin():
     # Breakage caught: an episode played twice or never when the batch is not a multiple of the workers.
     shares = [share_of(k, 3, 21, 10) for k in range(3)]

@@ -10,6 +10,7 @@ from qtally.control.streams import RandomStreams, UniformDraws
 from qtally.control.variants import EpisodeArrays, OffPolicy, OnPolicy
 from qtally.evaluate.exact import epsilon_soft_probs
 from qtally.policy.table_policy import (
+    EpsilonGreedyActing,
     TablePolicy,
     epsilon_greedy_decision,
     epsilon_soft_probabilities,
@@ -35,6 +36,19 @@ def test_acting_draws_each_action_with_exactly_the_probability_it_reports(epsilo
             picks[action] += 1
             assert probability == pytest.approx(expected[action], abs=1e-12)
         np.testing.assert_allclose(picks / grid.size, expected, atol=1e-4)
+
+
+@given(st.lists(st.floats(0.0, 1.0, exclude_max=True), min_size=1, max_size=30), st.sampled_from([0.0, 0.05, 0.3, 1.0]), st.integers(0, 3))
+def test_the_kept_acting_object_decides_as_the_reference_decision(uniforms, epsilon, row_index):
+    # EpsilonGreedyActing is what training acts with (and what the episode source runs
+    # inline); epsilon_greedy_decision is the protocol written plainly. Breakages caught: a
+    # kept probability that drifts from the reported one, a wrong explore index, a second draw.
+    row = ROWS[row_index]
+    greedy = [int(np.argmax(row))]
+    draws = iter(uniforms)
+    acting = EpsilonGreedyActing(greedy, epsilon, len(row), lambda: next(draws))
+    for u in uniforms:
+        assert acting(0) == epsilon_greedy_decision(row, epsilon, u)
 
 
 def test_one_tie_rule_in_acting_exact_evaluation_and_the_artifact():

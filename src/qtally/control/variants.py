@@ -42,21 +42,26 @@ def _backward_update(values: ActionValues, states: list, actions: list, rewards:
     The greedy list (:attr:`ActionValues.greedy`) is kept in step here, inline: this runs
     for every step of every episode, and a call per update cost a tenth of the loop.
     """
-    if not states:
+    last = len(states) - 1
+    if last < 0:
         return 0
-    n_actions = values.n_actions
-    keys = [s * n_actions + a for s, a in zip(states, actions)]
-    last = len(keys) - 1
-    # Filled from the end, so each key keeps the earliest time it occurs.
-    first = dict(zip(reversed(keys), range(last, -1, -1))) if first_visit else None
+    n_actions = values.q.shape[1]
+    first = None
+    # First visits need the earliest time of each pair, but only when some state comes back
+    # (a set of the states is a C loop; most episodes of a day counter or a growing sum never repeat one).
+    if first_visit and last and len(set(states)) <= last:
+        keys = [s * n_actions + a for s, a in zip(states, actions)]
+        # Filled from the end, so each key keeps the earliest time it occurs.
+        first = dict(zip(reversed(keys), range(last, -1, -1)))
     q, visits, weights_sum = values.flat
     greedy = values.greedy
     g = tail_value
     w = 1.0
     for t in range(last, -1, -1):
         g = gamma * g + rewards[t]
-        key = keys[t]
         state = states[t]
+        action = actions[t]
+        key = state * n_actions + action
         if first is None or first[key] == t:
             visits[key] += 1
             if weighted:
@@ -68,7 +73,7 @@ def _backward_update(values: ActionValues, states: list, actions: list, rewards:
             q[key] = new = old + step * (g - old)
             # Keep greedy[state] the lowest-index best action; the row is read again only when
             # the greedy action's own value drops.
-            action, best = actions[t], greedy[state]
+            best = greedy[state]
             if action == best:
                 if new < old:
                     row_start = key - action
@@ -79,7 +84,7 @@ def _backward_update(values: ActionValues, states: list, actions: list, rewards:
                 if new > incumbent or (new == incumbent and action < best):
                     greedy[state] = action
         if weighted:
-            if actions[t] != greedy[state]:  # the greedy target (lowest index on ties) would not take it
+            if action != greedy[state]:  # the greedy target (lowest index on ties) would not take it
                 return last - t + 1
             w /= behaviour[t]  # pi(a|s) = 1 for the target action
     return last + 1

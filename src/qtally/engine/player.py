@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from ..control.streams import UniformDraws, start_pair
-from ..policy.table_policy import epsilon_greedy_choice
+from ..policy.table_policy import EpsilonGreedyActing, epsilon_greedy_choice
 from .episodes import GymEpisodes, PlayedEpisode
 
 __all__ = ["Experience", "EpisodePlayer"]
@@ -56,6 +56,16 @@ class EpisodePlayer:
         self.start_states = list(start_states)
         self.n_actions = episodes.environment.n_actions
         self.per_state = bool(getattr(schedule, "per_state", False))
+        self._start_indices: list[int] | None = None  # table index of each start state, encoded once when first needed
+        # epsilon as a function of the episode number: ExploringStarts acts greedily whatever the schedule
+        self._greedy_only = variant.behaviour_epsilon(1.0) == 0.0
+        self._acting: EpsilonGreedyActing | None = None
+
+    def start_indices(self) -> list[int]:
+        if self._start_indices is None:
+            encode = self.episodes.environment.encoder.encode
+            self._start_indices = [encode(o) for o in self.start_states]
+        return self._start_indices
 
     def play(self, q: np.ndarray, state_visits: np.ndarray, episode: int, acting: UniformDraws, starts: UniformDraws, greedy: list[int] | None = None) -> Experience:
         """Episode number ``episode``, acting on ``q`` and ``state_visits`` as they are (neither is changed).
@@ -76,7 +86,7 @@ class EpisodePlayer:
         if variant.needs_start_control:
             index, first_action = start_pair(starts.next(), len(self.start_states), n_actions)
             start_observation = self.start_states[index]
-            start_state = self.episodes.environment.encoder.encode(start_observation)
+            start_state = self.start_indices()[index]
 
         if self.per_state:
             behaviour_epsilon = variant.behaviour_epsilon
@@ -89,28 +99,21 @@ class EpisodePlayer:
                 added[s] = seen + 1
                 epsilons.append(epsilon)
                 return epsilon_greedy_choice(greedy[s], n_actions, epsilon, next_uniform())
-        else:
-            epsilon = variant.behaviour_epsilon(schedule(episode, 0))
-            explore = epsilon / n_actions
-            exploit = explore + (1.0 - epsilon)
-
-            def choose(s: int) -> tuple[int, float]:
-                best = greedy[s]
-                u = next_uniform()
-                if u < epsilon:
-                    action = min(int(u / epsilon * n_actions), n_actions - 1)
-                    return action, (exploit if action == best else explore)
-                return best, exploit
+        else:  # one epsilon for the whole episode (0 for a variant that acts greedily)
+            epsilon = 0.0 if self._greedy_only else variant.behaviour_epsilon(schedule(episode, 0))
+            choose = self._acting
+            if choose is None or choose.epsilon != epsilon or choose.greedy is not greedy or choose.next_uniform != next_uniform:
+                choose = self._acting = EpsilonGreedyActing(greedy, epsilon, n_actions, next_uniform)  # kept while nothing changes
 
         played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
         # Every state the episode acted in is a visit, the exploring start's included; only
         # a forced first action is not a decision of the policy.
-        decisions = played.length - (start_state is not None)
+        decisions = len(played.states) - (start_state is not None)
         epsilon_sum = 0.0
         if self.per_state:
             for e in epsilons:
                 epsilon_sum += e
-        else:
+        elif epsilon:
             for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
                 epsilon_sum += epsilon
-        return Experience(episode=episode, played=played, visited=played.states, decisions=decisions, epsilon_sum=epsilon_sum)
+        return Experience(episode, played, played.states, decisions, epsilon_sum)  # positional: once per episode

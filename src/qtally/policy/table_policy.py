@@ -53,6 +53,7 @@ __all__ = [
     "TIE_RULE",
     "greedy_actions",
     "epsilon_soft_probabilities",
+    "EpsilonGreedyActing",
     "deterministic_probabilities",
     "epsilon_greedy_decision",
     "epsilon_greedy_choice",
@@ -163,6 +164,31 @@ def epsilon_greedy_choice(greedy: int, n_actions: int, epsilon: float, u: float)
     else:
         action = greedy
     return action, epsilon / n_actions + ((1.0 - epsilon) if action == greedy else 0.0)
+
+
+class EpsilonGreedyActing:
+    """Epsilon-greedy acting on a kept greedy list with one epsilon for the whole episode.
+
+    A chooser (``acting(state) -> (action, probability)``) under the draw protocol above,
+    the same choice as :func:`epsilon_greedy_choice`; the episode source recognises it and
+    runs the same lines inside its step loop, which saves a call per step.
+    ``epsilon = 0`` is greedy acting that still spends one uniform per decision.
+    """
+
+    __slots__ = ("greedy", "epsilon", "n_actions", "next_uniform", "explore", "exploit")
+
+    def __init__(self, greedy: list[int], epsilon: float, n_actions: int, next_uniform: Callable[[], float]):
+        self.greedy, self.epsilon, self.n_actions, self.next_uniform = greedy, float(epsilon), int(n_actions), next_uniform
+        self.explore = self.epsilon / self.n_actions
+        self.exploit = self.explore + (1.0 - self.epsilon)
+
+    def __call__(self, state: int) -> tuple[int, float]:
+        best = self.greedy[state]
+        u = self.next_uniform()
+        if u < self.epsilon:
+            action = min(int(u / self.epsilon * self.n_actions), self.n_actions - 1)
+            return action, (self.exploit if action == best else self.explore)
+        return best, self.exploit
 
 
 def sample_action(cumulative_row: list[float], probability_row: list[float], u: float) -> tuple[int, float]:
