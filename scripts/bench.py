@@ -18,7 +18,8 @@ JSON file (``--out``, default ``bench-results/``):
 3. **memory.** Peak resident memory of the main job (``qtally-train`` in a child process,
    full MLflow recording) after 10^4 and 10^6 episodes.
 4. **recording.** Wall time of a run with full MLflow recording against the same run with
-   recording off, fixed cost aside; and the fixed cost of one run (imports, opening the
+   recording off, fixed cost aside, in pairs whose order alternates (the median of the
+   paired overheads is reported); and the fixed cost of one run (imports, opening the
    store, artifacts, the model) on its own.
 
 Every figure is a median over ``--repeats`` runs (the gym path's ratios: the median of ratios
@@ -335,15 +336,25 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
         unrecorded(1)
         # The fixed cost is what recording adds to a one-episode run (the store, the artifacts, the model).
         fixed = statistics.median(recorded(1) - unrecorded(1) for _ in range(repeats))
-        full = statistics.median(recorded(episodes) for _ in range(repeats))
-        off = statistics.median(unrecorded(episodes) for _ in range(repeats))
+        # Paired, in alternating order (recorded first, then unrecorded first, ...): a slow spell
+        # of the machine then falls on both sides of a pair instead of on one block of runs.
+        fulls, offs, overheads = [], [], []
+        for k in range(repeats):
+            if k % 2:
+                offs.append(unrecorded(episodes))
+                fulls.append(recorded(episodes))
+            else:
+                fulls.append(recorded(episodes))
+                offs.append(unrecorded(episodes))
+            overheads.append((fulls[-1] - fixed - offs[-1]) / offs[-1])
+        full, off = statistics.median(fulls), statistics.median(offs)
         cold = float("nan")
         if not quick:  # a new process pays every import: measured apart, and not in quick mode
             start = time.perf_counter()
             subprocess.run(_train_command(1, Path(scratch) / "cold.db", []), cwd=scratch, capture_output=True, check=True)
             cold = time.perf_counter() - start
     result = {"episodes": episodes, "recorded_seconds": full, "unrecorded_seconds": off, "fixed_seconds_in_process": fixed,
-              "fixed_seconds_new_process": cold, "overhead": (full - fixed - off) / off}
+              "fixed_seconds_new_process": cold, "overhead": statistics.median(overheads), "overhead_range": [min(overheads), max(overheads)]}
     print(f"  recording: {result['overhead']:+.1%} of wall time, fixed cost {fixed:.1f} s in process, {cold:.1f} s from a new process", flush=True)
     return result
 
@@ -383,7 +394,7 @@ def markdown(results: dict) -> str:
         f"- Compilation: {results['compile']['cold_seconds']:.1f} s on a machine's first run, {results['compile']['warm_seconds']:.2f} s once cached.",
         f"- Peak memory of the main job: {memory[small]:.0f} MiB after {int(small):,} episodes, {memory[large]:.0f} MiB after {int(large):,} "
         f"({memory[large] / memory[small]:.2f}x).",
-        f"- Recording: {recording['overhead']:+.1%} of wall time for {recording['episodes']:,} episodes with full MLflow recording "
+        f"- Recording: {recording['overhead']:+.1%} of wall time (median of paired runs; {recording['overhead_range'][0]:+.1%} to {recording['overhead_range'][1]:+.1%}) for {recording['episodes']:,} episodes with full MLflow recording "
         f"({recording['recorded_seconds']:.1f} s against {recording['unrecorded_seconds']:.1f} s unrecorded, fixed cost aside); "
         f"fixed cost of recording a run {recording['fixed_seconds_in_process']:.1f} s (store, artifacts, model); a one-episode `qtally-train` from a new process "
         f"takes {recording['fixed_seconds_new_process']:.1f} s in all (imports included).",
