@@ -138,7 +138,7 @@ class GymEpisodes:
         add_state, add_action, add_reward, add_probability = states.append, actions.append, rewards.append, probabilities.append
         terminated = truncated = capped = False
         state = encode(observation)
-        step = self._core.step  # the resets above went through every wrapper; steps skip the bookkeeping ones
+        step = self._core.step  # past the bookkeeping wrappers (_BOOKKEEPING): play counts the limit itself
         cap = self._cap
         length = 0
         # EpsilonGreedyActing's own lines, run here instead of called: one call fewer per step.

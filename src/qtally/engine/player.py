@@ -57,7 +57,7 @@ class EpisodePlayer:
         self.n_actions = episodes.environment.n_actions
         self.per_state = bool(getattr(schedule, "per_state", False))
         self._start_indices: list[int] | None = None  # table index of each start state, encoded once when first needed
-        # epsilon as a function of the episode number: ExploringStarts acts greedily whatever the schedule
+        # a variant whose behaviour epsilon is always 0 (exploring starts) acts greedily whatever the schedule
         self._greedy_only = variant.behaviour_epsilon(1.0) == 0.0
         self._acting: EpsilonGreedyActing | None = None
 
