@@ -21,7 +21,7 @@ from __future__ import annotations
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Mapping, Protocol
+from typing import TYPE_CHECKING, Callable, Mapping, Protocol
 
 import numpy as np
 
@@ -38,11 +38,18 @@ from .policy.artifact import PolicyArtifact
 from .policy.table_policy import Fallback, greedy_actions
 from .tracking.sink import NullRecorder, Recorder
 
+if TYPE_CHECKING:
+    from .engine.compiled import ClosedWindow
+
 __all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATION_CHOICES", "ProgressSink"]
 
 # A probe turns the current Q table into extra metrics at each evaluation
 # (for example the exact optimality gap where the environment has a model).
 Probe = Callable[[np.ndarray], Mapping[str, float]]
+
+# Episodes of one compiled-engine span at most (whole logging windows; at least one): a call
+# costs about 20 microseconds of Python, and a stop request or the progress bar waits for a span.
+_SPAN_EPISODES = 10_000
 
 
 class TrainingStopped(KeyboardInterrupt):
@@ -148,6 +155,16 @@ class Trainer:
         values = self.state.values
         return PolicyArtifact.from_q(values.q, values.visits, self.environment.signature(), fallback=self.fallback, episode=self.state.episode, **self.facts)
 
+    def _log_window(self, window: LogWindow, coverage: float, episode: int) -> None:
+        """One logging window's metrics at ``episode``, to the sink, the history and the progress bar."""
+        metrics = window.metrics()
+        metrics["coverage_sa"] = coverage
+        self._log(metrics, episode)
+        if self._collector is not None:  # timings: recorded, but not part of the state's history
+            self.recorder.log_metrics(self._collector.rates.metrics(), episode)
+        if self.progress is not None:
+            self.progress.update(episode, metrics)
+
     def _log(self, metrics: Mapping[str, float], step: int) -> None:
         self.recorder.log_metrics(metrics, step)
         for name, value in metrics.items():
@@ -249,26 +266,38 @@ class Trainer:
         self._collector = make_collector(collect, blueprint, [own, *others[: collect.workers - 1]])
 
     def _next_boundary(self, stop: int) -> int:
-        """The next episode after which something is logged, evaluated or saved (or ``stop``)."""
+        """The next episode after which something is logged, evaluated or saved (or ``stop``).
+
+        The compiled engine closes logging windows itself (:meth:`CompiledEpisodes.learn`),
+        so for it a span runs over whole windows up to about ``_SPAN_EPISODES`` episodes:
+        one kernel call per span, where a call per window of 100 short episodes cost a
+        third of the run in the Python around it. A stop request waits for the span's end.
+        """
         episode, settings = self.state.episode, self.settings
-        boundary = min(stop, (episode // settings.log_every + 1) * settings.log_every)
+        log_every = settings.log_every
+        if self.engine == "compiled":
+            log_every *= max(1, _SPAN_EPISODES // log_every)
+        boundary = min(stop, (episode // log_every + 1) * log_every)
         for every in (settings.eval_every, settings.snapshot_every, settings.checkpoint_every):
             if every:
                 boundary = min(boundary, (episode // every + 1) * every)
         return boundary
 
-    def _play_until(self, episode: int) -> None:
-        """Play and learn every episode up to ``episode``, through the engine this trainer chose."""
+    def _play_until(self, episode: int) -> list[ClosedWindow]:
+        """Play and learn every episode up to ``episode``, through the engine this trainer chose.
+
+        Returns the logging windows closed before ``episode`` (only the compiled engine
+        closes any; on the gym path every span ends on a logging boundary).
+        """
         if self._collector is not None:  # batches on one snapshot each, learned from in episode order
             batch, values = self.settings.collect.batch_size, self.state.values
             while self.state.episode < episode and not self.stop_requested:
                 count = min(batch, episode - self.state.episode)
                 for experience in self._collector.collect(values.q, values.state_visits, self.state.episode + 1, count):
                     self.learn(experience)
-            return
+            return []
         if self.engine == "compiled":
-            self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode)
-            return
+            return self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode, self.settings.log_every)
         # play_and_learn, with the lookups hoisted out of the loop: on short episodes (a
         # Blackjack hand is one or two steps) the per-episode glue is a fair share of the time.
         state, play, learn = self.state, self.player.play, self.learn
@@ -276,6 +305,7 @@ class Trainer:
         q, state_visits, greedy = values.q, values.state_visits, values.greedy
         while state.episode < episode and not self.stop_requested:
             learn(play(q, state_visits, state.episode + 1, acting, starts, greedy))
+        return []
 
     def save_state(self, path) -> Path:
         """Write the whole state between two episodes, the environment's generator included."""
@@ -296,17 +326,12 @@ class Trainer:
         try:
             self.start_workers()
             while state.episode < stop:
-                self._play_until(self._next_boundary(stop))
+                for closed in self._play_until(self._next_boundary(stop)):  # windows the compiled engine closed on the way
+                    self._log_window(closed.window, closed.coverage, closed.episode)
                 episode = state.episode
                 last = episode == settings.episodes
                 if episode % settings.log_every == 0 or last:
-                    metrics = state.window.metrics()
-                    metrics["coverage_sa"] = state.values.coverage()
-                    self._log(metrics, episode)
-                    if self._collector is not None:  # timings: recorded, but not part of the state's history
-                        self.recorder.log_metrics(self._collector.rates.metrics(), episode)
-                    if self.progress is not None:
-                        self.progress.update(episode, metrics)
+                    self._log_window(state.window, state.values.coverage(), episode)
                     state.window = LogWindow()
                 if (settings.eval_every and episode % settings.eval_every == 0) or last:
                     self.evaluate()

@@ -122,3 +122,20 @@ def test_the_compiled_engine_draws_each_stream_block_once_not_once_per_call(monk
     monkeypatch.setattr(UniformDraws, "_restart_here", lambda self, size: (refills.append(size), original(self, size))[1])
     _train(FROZEN_8X8, "on_policy", True, Constant(0.2), "compiled", episodes=3000)  # 30 calls of 100 episodes
     assert 0 < len(refills) <= 12, len(refills)  # 3000 episodes of about 30 steps: a few blocks per stream, not 2 per call
+
+
+def test_the_trainer_calls_the_kernel_once_per_span_not_once_per_logging_window(monkeypatch):
+    # 3000 episodes logged every 100, evaluated every 1000: three spans (they end on the
+    # evaluations), each closing its windows inside the kernel. Breakage caught: a span
+    # per logging window again (30 calls; about 20 microseconds of Python each, a third of
+    # a run of short episodes), which every equality test would pass.
+    from qtally.engine import compiled
+
+    calls = []
+    original = compiled.CompiledEpisodes.learn
+    monkeypatch.setattr(compiled.CompiledEpisodes, "learn", lambda self, *a, **k: (calls.append(a[-2]), original(self, *a, **k))[1])
+    environment = make_environment(FROZEN_8X8)
+    settings = TrainingSettings(episodes=3000, seed=2, log_every=100, eval_every=1000, eval_episodes=2, engine="compiled")
+    outcome = Trainer(environment, make_variant("on_policy", 0.95, True, None), Constant(0.2), settings).run()
+    assert calls == [1000, 1000, 1000]
+    assert [step for step, _ in outcome.history["coverage_sa"]] == list(range(100, 3001, 100))

@@ -146,7 +146,9 @@ def test_a_stop_then_resume_logs_every_step_once(tmp_path, engine, stop_after):
     # Breakage caught: a stop honoured before the boundary's logging and evaluation (200 is
     # both): the checkpoint then says 200 episodes were played, the resumed run starts at the
     # next boundary and the step-200 metrics and evaluation are never logged. The compiled
-    # engine only stops on boundaries, so it always hit this.
+    # engine only stops where a span ends (here on the evaluations, every 100), so it always
+    # hit this; its spans also close the logging windows inside them (every 50), which the
+    # resumed history must hold once each.
     from qtally.trainer import TrainingStopped
 
     settings = TrainingSettings(episodes=400, seed=11, log_every=50, eval_every=100, eval_episodes=10, engine=engine)
@@ -157,15 +159,16 @@ def test_a_stop_then_resume_logs_every_step_once(tmp_path, engine, stop_after):
     assert first.engine == engine
     play_until = first._play_until
 
-    def play_and_ask_to_stop(episode: int) -> None:
-        play_until(min(episode, stop_after) if engine == "gym" else episode)
+    def play_and_ask_to_stop(episode: int):
+        closed = play_until(min(episode, stop_after) if engine == "gym" else episode)
         if first.state.episode >= stop_after:
             first.request_stop("a test")
+        return closed
 
     first._play_until = play_and_ask_to_stop
     with pytest.raises(TrainingStopped) as stopped:
         first.run()
-    expected_stop = stop_after if engine == "gym" else (stop_after // 50 + (stop_after % 50 > 0)) * 50
+    expected_stop = stop_after if engine == "gym" else -(-stop_after // 100) * 100
     assert stopped.value.episode == expected_stop
     second = Trainer(make_environment(SLIPPERY_LAKE), make_variant("on_policy", 0.95, True, None), GlieVisits(3.0, 0.05), settings,
                      state=TrainerState.load(tmp_path / "state.npz"))

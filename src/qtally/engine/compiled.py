@@ -17,7 +17,7 @@ pays for compilation; :attr:`CompiledEpisodes.compile_seconds` reports what this
 from __future__ import annotations
 
 import time
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -26,7 +26,7 @@ from ..control.streams import UniformDraws
 from ..control.trainer_state import LogWindow, TrainerState
 from ..envs.outcomes import OutcomeTable
 
-__all__ = ["ENGINE_CHOICES", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "variant_code", "time_limit_of"]
+__all__ = ["ENGINE_CHOICES", "ClosedWindow", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "variant_code", "time_limit_of"]
 
 ENGINE_CHOICES = ("auto", "gym", "compiled")
 _WINDOW = 1 << 16  # uniforms per block of each stream the kernel reads (512 KiB): few refills, and a fixed size whatever the run length
@@ -73,6 +73,14 @@ def time_limit_of(env) -> int:
             return int(layer._max_episode_steps)
         layer = getattr(layer, "env", None)
     return 0
+
+
+class ClosedWindow(NamedTuple):
+    """A logging window the kernel closed inside a span: the episode it ends on, its sums, the share of pairs covered then."""
+
+    episode: int
+    window: LogWindow
+    coverage: float
 
 
 def _window_array(window: LogWindow) -> np.ndarray:
@@ -131,8 +139,13 @@ class CompiledEpisodes:
         self._pending_seed = None
 
     # ------------------------------------------------------------ learning
-    def learn(self, state: TrainerState, variant, schedule, truncation: str, n_episodes: int) -> int:
-        """Play and learn ``n_episodes`` episodes into ``state``; return how many steps they took."""
+    def learn(self, state: TrainerState, variant, schedule, truncation: str, n_episodes: int, log_every: int = 0) -> list[ClosedWindow]:
+        """Play and learn ``n_episodes`` episodes into ``state``; return the logging windows closed on the way.
+
+        A window closes after each episode numbered a multiple of ``log_every`` (0: none)
+        before the last of the ``n_episodes``: the caller logs those, in order, and the
+        window the span ends in stays in ``state.window`` as on the gym path.
+        """
         if self._draws is None:
             raise RuntimeError("seed the compiled engine (or restore its generator) before learning")
         k = self._kernels
@@ -144,8 +157,11 @@ class CompiledEpisodes:
         step_size = -1.0 if variant.step_size is None else float(variant.step_size)
         values, streams, table = state.values, state.streams, self.table
         window = _window_array(state.window)
-        length_before = window[2]
-        capped_before = window[5]
+        episode_before = state.episode
+        span_end = episode_before + n_episodes
+        log_every = max(int(log_every), 0)
+        closed = np.zeros((n_episodes // log_every + 1 if log_every else 1, 8))
+        counters = np.array([0, np.count_nonzero(values.visits)], dtype=np.int64)  # rows filled, pairs covered
         need = 2 * (self.max_length + 1)  # enough for one more episode whatever its length
         empty = np.zeros(0)
         done_total = 0
@@ -164,7 +180,7 @@ class CompiledEpisodes:
                 code, bool(variant.first_visit), float(variant.gamma), step_size,
                 kind, float(p0), float(p1), float(p2),
                 truncation_code, self.time_limit, self.step_cap,
-                *self._buffers, self._first_time, window,
+                *self._buffers, self._first_time, window, log_every, span_end, closed, counters,
             )
             if first_call:  # a call with no episodes: what it took is compiling or loading the cached code
                 self.compile_seconds += time.perf_counter() - started
@@ -177,6 +193,9 @@ class CompiledEpisodes:
             state.episode += done
             done_total += done
         values.forget_greedy()  # the kernel wrote q directly
+        rows = closed[: counters[0]]
+        first_closed = (episode_before // log_every + 1) * log_every if log_every else 0
+        windows = [ClosedWindow(first_closed + i * log_every, _window_from(row[:7]), float(row[7]) / values.visits.size) for i, row in enumerate(rows)]
+        state.capped_episodes += int(rows[:, 5].sum()) + int(window[5]) - state.window.capped
         state.window = _window_from(window)
-        state.capped_episodes += int(window[5] - capped_before)
-        return int(window[2] - length_before)
+        return windows

@@ -73,13 +73,18 @@ def learn_episodes(
     schedule_kind, p0, p1, p2,
     truncation, time_limit, step_cap,
     buffer_states, buffer_actions, buffer_rewards, buffer_probabilities, first_time,
-    window,
+    window, log_every, span_end, closed, counters,
 ):
     """Play and learn up to ``n_episodes`` episodes; return (episodes done, env, acting, start uniforms read).
 
     ``step_size`` < 0 means the sample average. ``time_limit`` 0 means none. ``window``
     holds the logging window's running sums (episodes, return, length, epsilon, truncated,
     capped, steps used), added to one episode at a time as :class:`LogWindow.add` does.
+    After an episode whose number is a multiple of ``log_every`` (other than ``span_end``,
+    which the caller closes), the window's sums go to row ``counters[0]`` of ``closed``
+    with the number of state-action pairs that have absorbed a return (``counters[1]``,
+    kept as visits go from 0 to 1) in column 7, and the sums start again from 0: one call
+    covers many logging windows, and the Python around a call is paid once per span.
     """
     n_actions = q.shape[1]
     max_length = buffer_states.shape[0]
@@ -188,6 +193,8 @@ def learn_episodes(
                     if counted:
                         weights[s, a] += w
                         visits[s, a] += 1
+                        if visits[s, a] == 1:
+                            counters[1] += 1
                         step = w / weights[s, a] if step_size < 0.0 else min(1.0, step_size * w)
                         q[s, a] += step * (g - q[s, a])
                     used += 1
@@ -197,6 +204,8 @@ def learn_episodes(
                 else:
                     if counted:
                         visits[s, a] += 1
+                        if visits[s, a] == 1:
+                            counters[1] += 1
                         step = 1.0 / visits[s, a] if step_size < 0.0 else step_size
                         q[s, a] += step * (g - q[s, a])
             if variant != OFF_POLICY:
@@ -212,6 +221,13 @@ def learn_episodes(
         window[5] += capped
         window[6] += used
         done += 1
+        if log_every > 0 and episode % log_every == 0 and episode != span_end:
+            filled = counters[0]
+            for i in range(7):
+                closed[filled, i] = window[i]
+                window[i] = 0.0
+            closed[filled, 7] = counters[1]
+            counters[0] = filled + 1
     return done, env_used, acting_used, start_used
 
 
