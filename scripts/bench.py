@@ -14,7 +14,9 @@ JSON file (``--out``, default ``bench-results/``):
 2. **compiled vs gym.** The compiled engine's steps per second against the gym path's, and
    against a minimal compiled kernel written here (``qtally.engine.kernels.reference_kernel``:
    epsilon-greedy steps on the same table, nothing recorded or learned), the limit of this
-   machine. Compilation is reported apart: cold (an empty numba cache) and warm (cached).
+   machine, timed right after each compiled run over as many steps (the median of the
+   per-repeat ratios is reported). Compilation is reported apart: cold (an empty numba
+   cache) and warm (cached).
 3. **memory.** Peak resident memory of the main job (``qtally-train`` in a child process,
    full MLflow recording) after 10^4 and 10^6 episodes.
 4. **recording.** Wall time of a run with full MLflow recording against the same run with
@@ -22,8 +24,8 @@ JSON file (``--out``, default ``bench-results/``):
    paired overheads is reported); and the fixed cost of one run (imports, opening the
    store, artifacts, the model) on its own.
 
-Every figure is a median over ``--repeats`` runs (the gym path's ratios: the median of ratios
-taken within each repeat). ``--quick`` shrinks every run (the tests
+Every figure is a median over ``--repeats`` runs (the ratios to bare stepping and to the
+minimal kernel: the median of ratios taken within each repeat). ``--quick`` shrinks every run (the tests
 use it to check the script works); the README's figures come from the full mode::
 
     python scripts/bench.py
@@ -49,30 +51,6 @@ VARIANTS = ("exploring_starts", "on_policy", "off_policy")
 # Episodes of one timed gym run (about a second each) and of one compiled run.
 GYM_EPISODES = {"frozen_lake_8x8": 3000, "blackjack": 30000, "restock": 8000}
 COMPILED_EPISODES = {"frozen_lake_8x8": 300_000, "blackjack": 3_000_000, "restock": 300_000}
-
-
-def _median_time(action, repeats: int, prepare=None) -> float:
-    """Median seconds of ``action(prepare())`` over ``repeats`` runs; ``prepare`` is not timed."""
-    times = []
-    for _ in range(repeats):
-        argument = prepare() if prepare else None
-        start = time.perf_counter()
-        action(argument) if prepare else action()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
-
-
-def _timed_run(name: str, variant_name: str, episodes: int, engine: str, repeats: int):
-    """Median seconds of ``Trainer.run`` (construction untimed, after one untimed warm-up) and the last outcome."""
-    holder = {}
-    _trainer(name, variant_name, min(episodes, 10), engine).run()
-
-    def run(trainer):
-        holder["outcome"] = trainer.run()
-        holder["trainer"] = trainer
-
-    seconds = _median_time(run, repeats, prepare=lambda: _trainer(name, variant_name, episodes, engine))
-    return seconds, holder["outcome"], holder["trainer"]
 
 
 def _trainer(name: str, variant_name: str, episodes: int, engine: str, seed: int = 0):
@@ -218,6 +196,7 @@ def gym_against_bare(scale: float, repeats: int) -> list[dict]:
 
 
 def compiled_against_gym(scale: float, repeats: int, gym_rows: list[dict]) -> list[dict]:
+    """Each repeat times a compiled run, then the minimal kernel over as many steps: the median of the per-repeat ratios is reported."""
     import numpy as np
 
     from qtally.engine import kernels
@@ -226,27 +205,33 @@ def compiled_against_gym(scale: float, repeats: int, gym_rows: list[dict]) -> li
     rows = []
     for name in ENVS:
         episodes = max(100, int(COMPILED_EPISODES[name] * scale))
-        reference_rate = None
         for variant_name in VARIANTS:
-            seconds, outcome, trainer = _timed_run(name, variant_name, episodes, "compiled", repeats)
-            steps = _steps(outcome)
-            if reference_rate is None:
+            _trainer(name, variant_name, 10, "compiled").run()  # warm-up: the cached code loaded
+            rates, of_reference = [], []
+            for _ in range(repeats):
+                trainer = _trainer(name, variant_name, episodes, "compiled")
+                start = time.perf_counter()
+                outcome = trainer.run()
+                seconds = time.perf_counter() - start
+                steps = _steps(outcome)
                 table = trainer.episodes.table
-                q = np.zeros((table.n_states, table.n_actions))
-                kernels.reference_kernel(table.offsets, table.next_states, table.probabilities, table.terminated, table.start_states, table.start_probabilities, q, 1000, 0)
-                reference_seconds = _median_time(
-                    lambda: kernels.reference_kernel(table.offsets, table.next_states, table.probabilities, table.terminated, table.start_states, table.start_probabilities, q, int(steps), 0),
-                    repeats,
-                )
-                reference_rate = steps / reference_seconds
-            rate = steps / seconds
+                arguments = (table.offsets, table.next_states, table.probabilities, table.terminated, table.start_states, table.start_probabilities,
+                             np.zeros((table.n_states, table.n_actions)))
+                kernels.reference_kernel(*arguments, 1000, 0)
+                start = time.perf_counter()
+                kernels.reference_kernel(*arguments, int(steps), 0)
+                reference_seconds = time.perf_counter() - start
+                rates.append(steps / seconds)
+                of_reference.append(reference_seconds / seconds)
+            rate = statistics.median(rates)
             rows.append({
                 "env": name, "variant": variant_name, "episodes": episodes,
-                "compiled_steps_per_s": rate, "compiled_episodes_per_s": episodes / seconds,
+                "compiled_steps_per_s": rate, "compiled_episodes_per_s": rate * episodes / steps,
                 "over_gym": rate / gym_rate[(name, variant_name)],
-                "reference_steps_per_s": reference_rate, "of_reference": rate / reference_rate,
+                "of_reference": statistics.median(of_reference), "of_reference_range": [min(of_reference), max(of_reference)],
             })
-            print(f"  compiled {name:16s} {variant_name:17s} {rate / 1e6:.1f} M steps/s, {rows[-1]['over_gym']:.0f}x gym", flush=True)
+            print(f"  compiled {name:16s} {variant_name:17s} {rate / 1e6:.1f} M steps/s, {rows[-1]['over_gym']:.0f}x gym, "
+                  f"{rows[-1]['of_reference']:.2f} of the minimal kernel", flush=True)
     return rows
 
 
@@ -375,7 +360,7 @@ def markdown(results: dict) -> str:
         f"Measured by `python scripts/bench.py{' --quick' if results['quick'] else ''}`: {v['cores']} cores, Python {v['python']}, numpy {v['numpy']}, "
         f"numba {v['numba']}, gymnasium {v['gymnasium']}; medians of {results['repeats']} runs.",
         "",
-        "| environment | variant | gym path, steps/s | of bare stepping (same episodes; lowest–highest repeat) | of bare stepping (random actions, steps/s) | compiled, steps/s | compiled over gym | compiled of minimal kernel |",
+        "| environment | variant | gym path, steps/s | of bare stepping (same episodes; lowest–highest repeat) | of bare stepping (random actions, steps/s) | compiled, steps/s | compiled over gym | compiled of minimal kernel (lowest–highest repeat) |",
         "|---|---|---:|---:|---:|---:|---:|---:|",
     ]
     compiled = {(r["env"], r["variant"]): r for r in results["compiled"]}
@@ -384,7 +369,7 @@ def markdown(results: dict) -> str:
         low, high = row["same_episodes_ratio_range"]
         lines.append(
             f"| {row['env']} | {row['variant']} | {row['train_steps_per_s']:,.0f} | {row['same_episodes_ratio']:.2f} ({low:.2f}–{high:.2f}) | {row['random_actions_steps_ratio']:.2f} "
-            f"| {c['compiled_steps_per_s']:,.0f} | {c['over_gym']:.0f}x | {c['of_reference']:.2f} |"
+            f"| {c['compiled_steps_per_s']:,.0f} | {c['over_gym']:.0f}x | {c['of_reference']:.2f} ({c['of_reference_range'][0]:.2f}–{c['of_reference_range'][1]:.2f}) |"
         )
     memory = results["memory"]
     small, large = sorted(memory, key=int)

@@ -28,6 +28,8 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
     for row in data["compiled"]:
         assert row["over_gym"] > 1.0, row  # compiled code slower than Python would be a broken engine, not noise
         assert 0 < row["of_reference"] and math.isfinite(row["of_reference"])
+        low, high = row["of_reference_range"]
+        assert low <= row["of_reference"] <= high, row
     assert all(v > 0 for v in data["memory"].values()) and len(data["memory"]) == 2
     assert data["compile"]["warm_seconds"] > 0 and math.isfinite(data["recording"]["overhead"])
     table = (tmp_path / "out" / "bench.md").read_text()

@@ -25,6 +25,24 @@ def test_multidiscrete_with_start_offsets():
     assert enc.decode(11) == (3, 1)
 
 
+def test_every_form_of_a_multidiscrete_observation_encodes_alike():
+    # The int64 array a MultiDiscrete space gives takes a shortcut past the int() calls.
+    # Breakage caught: the shortcut forgetting the start offsets, taking a float or int32
+    # array as int64, or letting a malformed array through with a traceback.
+    space = spaces.MultiDiscrete([3, 4, 5], start=[1, -2, 0], seed=3)
+    enc = encoder_for_space(space)
+    for _ in range(50):
+        sample = space.sample()
+        assert sample.dtype == np.int64
+        expected = int(np.ravel_multi_index(sample - space.start, (3, 4, 5)))
+        forms = [sample, sample.astype(np.int32), sample.astype(np.float64), sample.tolist(), tuple(sample.tolist()), list(sample)]
+        indices = [enc.encode(form) for form in forms]
+        assert indices == [expected] * len(forms) and all(type(index) is int for index in indices), indices  # 7.0 == 7 would pass
+    for bad in (np.array([[1], [0], [2]]), np.array([1, 0]), np.array(2), np.array([4, 0, 0]), np.array([1, -3, 0])):
+        with pytest.raises(EncoderError):
+            enc.encode(bad)
+
+
 def test_batches_from_arrays_lists_and_frames_agree():
     enc = encoder_for_space(spaces.MultiDiscrete([3, 4]))
     rows = [[0, 1], [2, 3], [1, 0]]
