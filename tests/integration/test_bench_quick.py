@@ -32,6 +32,8 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
         assert low <= row["of_reference"] <= high, row
     assert all(v > 0 for v in data["memory"].values()) and len(data["memory"]) == 2
     assert data["compile"]["warm_seconds"] > 0 and math.isfinite(data["recording"]["overhead"])
+    low, high = data["recording"]["in_run_overhead_range"]
+    assert low <= data["recording"]["in_run_overhead"] <= high and math.isfinite(high), data["recording"]
     table = (tmp_path / "out" / "bench.md").read_text()
     for env in ("frozen_lake_8x8", "blackjack", "restock"):
         assert table.count(f"| {env} |") == 3
