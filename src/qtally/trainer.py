@@ -270,8 +270,8 @@ class Trainer:
 
         The compiled engine closes logging windows itself (:meth:`CompiledEpisodes.learn`),
         so for it a span runs over whole windows up to about ``_SPAN_EPISODES`` episodes:
-        one kernel call per span, where a call per window of 100 short episodes cost a
-        third of the run in the Python around it. A stop request waits for the span's end.
+        one kernel call per span, where a call per window of 100 short episodes cost about
+        a quarter of the run in the Python around it. A stop request waits for the span's end.
         """
         episode, settings = self.state.episode, self.settings
         log_every = settings.log_every
