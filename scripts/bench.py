@@ -318,11 +318,11 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
     spell slows both parts alike, so this view does not drift. Recording adds nothing to
     a run but the sink's calls (the trainer builds the same metrics either way).
     """
-    from qtally.tracking.mlflow_sink import MlflowRecorder
     from hydra import compose, initialize_config_module
 
     from qtally.config.schema import register_schema
     from qtally.experiment import _exact_probes, prepare, run_training
+    from qtally.tracking.mlflow_sink import MlflowRecorder
     from qtally.trainer import TrainingSettings, train
 
     register_schema()
