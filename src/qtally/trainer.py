@@ -30,6 +30,7 @@ from .control.streams import evaluation_base, evaluation_seeds
 from .control.trainer_state import LogWindow, TrainerState
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
 from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, compiled_beside_workers, make_collector, stream_places
+from .engine.compiled_update import COMPILED_FROM, CompiledUpdate
 from .engine.episodes import GymEpisodes
 from .engine.player import EpisodePlayer, Experience
 from .envs.factory import TabularEnvironment, make_environment
@@ -147,6 +148,8 @@ class Trainer:
         elif self.state.episode == 0:
             self.episodes.seed(self.state.streams.env_seed)
         self.player = EpisodePlayer(self.episodes, variant, schedule, self.start_states) if self.engine == "gym" else None
+        # Long episodes are learned from by the compiled engine's update (same floats, fewer microseconds).
+        self._long_update = CompiledUpdate(variant) if self.engine == "gym" else None
         self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
 
     # ------------------------------------------------------------ pieces
@@ -219,7 +222,14 @@ class Trainer:
             tail = tail_value(self.settings.truncation, truncated=True, bootstrap_value=bootstrap_value)
         used = 0
         if tail is not None:
-            used = variant.update_lists(values, played.states, played.actions, played.rewards, played.probabilities, tail)
+            update = variant
+            long_update = self._long_update
+            if long_update is not None and len(played.states) >= COMPILED_FROM:
+                if long_update.ready or long_update.load_if_it_pays((self.settings.episodes - episode) * len(played.states)):
+                    update = long_update
+                else:
+                    self._long_update = None  # decided once: too few steps left to repay loading numba
+            used = update.update_lists(values, played.states, played.actions, played.rewards, played.probabilities, tail)
         state.capped_episodes += played.capped
         decisions = experience.decisions
         state.window.add(played.total_reward, played.length, experience.epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)

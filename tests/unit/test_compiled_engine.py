@@ -31,6 +31,9 @@ def _train(spec, variant, first_visit, schedule, engine, *, episodes=1500, trunc
     settings = TrainingSettings(episodes=episodes, seed=5, log_every=100, eval_every=0, eval_episodes=3, truncation=truncation, step_cap=step_cap, engine=engine)
     trainer = Trainer(environment, make_variant(variant, gamma, first_visit, step_size), schedule, settings, state=state)
     assert trainer.engine == engine
+    # The gym side learns through the variants' Python loops only, so every update here is
+    # checked against the kernel's (test_compiled_update.py covers the gym path's mix).
+    trainer._long_update = None
     outcome = trainer.run(pause_at=pause_at)
     return trainer, outcome
 

@@ -8,6 +8,7 @@ from hypothesis import strategies as st
 from qtally.control.action_values import ActionValues
 from qtally.control.streams import RandomStreams, UniformDraws
 from qtally.control.variants import EpisodeArrays, OffPolicy, OnPolicy
+from qtally.engine.compiled_update import CompiledUpdate
 from qtally.evaluate.exact import epsilon_soft_probs
 from qtally.policy.table_policy import (
     EpsilonGreedyActing,
@@ -85,6 +86,32 @@ def test_uniform_draws_match_single_calls_and_restore_mid_block():
     assert [streams.acting.next() for _ in range(700)] == ahead
 
 
+def test_the_fast_draw_window_and_advance_read_one_stream_in_turns():
+    # The gym path reads through ``draw`` (a list iterator chained over blocks), the compiled
+    # engine through window/advance, and a checkpoint can fall between any two reads.
+    # Breakages caught: a block boundary that repeats or skips a number, a position that
+    # forgets what ``draw`` read (state, window and advance would then reread it), and a
+    # draw function kept across a move of the stream reading old numbers unnoticed.
+    draws = UniformDraws(np.random.default_rng(11))
+    reference = np.random.default_rng(11).random(10_000).tolist()
+    draw = draws.draw
+    read = [draw() for _ in range(1500)]  # across the first block's end
+    assert draws.state()["position"] == 1500 - 1024
+    window = draws.window(100)
+    assert window[:3].tolist() == reference[1500:1503]
+    draws.advance(300)
+    with pytest.raises(RuntimeError, match="stale"):
+        for _ in range(2000):  # the old draw runs out of its block, then refuses
+            draw()
+    read += reference[1500:1800]
+    saved = draws.state()
+    read += [draws.next() for _ in range(2000)]
+    assert read == reference[:3800]
+    again = RandomStreams(0).acting
+    again.restore(saved)
+    assert [again.draw() for _ in range(2000)] == reference[1800:3800]
+
+
 def test_first_visit_is_per_state_action_pair():
     # State 0 is visited twice with different actions: both pairs get their first return.
     # Breakage caught: first visits keyed on the state alone (the second pair would be skipped).
@@ -119,11 +146,13 @@ def test_state_value_adds_left_to_right_as_the_compiled_kernel_does():
     variant_class=st.sampled_from([OnPolicy, OffPolicy]),
     first_visit=st.booleans(),
     step_size=st.sampled_from([None, 0.5, 1.0]),
+    compiled=st.booleans(),
 )
-def test_the_greedy_actions_kept_by_the_updates_are_the_tables_lowest_index_argmax(seed, variant_class, first_visit, step_size):
-    # The gym path acts on ActionValues.greedy, which the updates keep in step entry by
-    # entry instead of reading each row. Small integer rewards and step size 1 make ties
-    # and drops of the greedy action's own value common.
+def test_the_greedy_actions_kept_by_the_updates_are_the_tables_lowest_index_argmax(seed, variant_class, first_visit, step_size, compiled):
+    # The gym path acts on ActionValues.greedy, which the updates (the Python loop, or the
+    # compiled one for long episodes) keep in step entry by entry instead of reading each
+    # row. Small integer rewards and step size 1 make ties and drops of the greedy action's
+    # own value common.
     # Breakages caught: skipping the row read when the greedy value drops, taking a tied
     # higher-index action (or missing a tied lower-index one), an update path that writes
     # q without following it; and an off-policy loop that cuts against a stale target.
@@ -132,14 +161,15 @@ def test_the_greedy_actions_kept_by_the_updates_are_the_tables_lowest_index_argm
     values = ActionValues.zeros(n_states, n_actions)
     reference = ActionValues.zeros(n_states, n_actions)
     variant = variant_class(gamma=1.0, first_visit=first_visit, step_size=step_size)
+    update = CompiledUpdate(variant) if compiled else variant
     for _ in range(25):
         length = int(rng.integers(1, 7))
         states = rng.integers(n_states, size=length).tolist()
         actions = rng.integers(n_actions, size=length).tolist()
         rewards = rng.integers(-2, 3, size=length).astype(float).tolist()
         behaviour = rng.choice([0.25, 0.5, 1.0], size=length).tolist()
-        used = variant.update_lists(values, states, actions, rewards, behaviour, 0.0)
-        assert values.greedy == values.q.argmax(axis=1).tolist()
+        used = update.update_lists(values, states, actions, rewards, behaviour, 0.0)
+        assert values.greedy.tolist() == values.q.argmax(axis=1).tolist()
         # The same update against a table whose greedy list is read afresh each time.
         reference.forget_greedy()
         assert variant.update_lists(reference, states, actions, rewards, behaviour, 0.0) == used

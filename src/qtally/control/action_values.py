@@ -55,17 +55,24 @@ class ActionValues:
         return memoryview(self.state_visits).cast("B").cast(self.state_visits.dtype.char)
 
     @cached_property
-    def greedy(self) -> list[int]:
-        """The greedy action of every state (lowest index on ties), read in constant time while acting.
+    def greedy_array(self) -> np.ndarray:
+        """The greedy action of every state (lowest index on ties), kept in step with ``q`` by the gym path's updates.
 
-        Built from ``q`` when first asked for; the gym path's updates keep it in step entry
-        by entry (:mod:`qtally.control.variants`). Whatever writes ``q`` another way calls
-        :meth:`forget_greedy` afterwards.
+        Built from ``q`` when first asked for; the updates keep it entry by entry
+        (:mod:`qtally.control.variants`, :func:`qtally.engine.kernels.update_episode`).
+        Whatever writes ``q`` another way calls :meth:`forget_greedy` afterwards.
         """
-        return self.q.argmax(axis=1).tolist()
+        return self.q.argmax(axis=1).astype(np.int64)
+
+    @cached_property
+    def greedy(self) -> memoryview:
+        """:attr:`greedy_array` as a memoryview: acting reads one entry per step, in constant time."""
+        array = self.greedy_array
+        return memoryview(array).cast("B").cast(array.dtype.char)
 
     def forget_greedy(self) -> None:
         self.__dict__.pop("greedy", None)
+        self.__dict__.pop("greedy_array", None)
 
     def coverage(self) -> float:
         """Fraction of state-action pairs whose estimate has absorbed at least one return."""

@@ -22,7 +22,9 @@ True
 
 from __future__ import annotations
 
-from typing import Any
+from itertools import chain
+from operator import length_hint
+from typing import Any, Callable, Iterator
 
 import numpy as np
 
@@ -38,7 +40,10 @@ class UniformDraws:
 
     A block of ``Generator.random(n)`` holds exactly the numbers that ``n`` single calls
     would give, so the block size never changes the stream; it only saves the per-call
-    cost. :meth:`next` serves the gym path one number at a time; :meth:`window` and
+    cost. :meth:`next` serves the gym path one number at a time, and :attr:`draw` does the
+    same as a C-level call (a list iterator's, chained over blocks), for loops that run
+    once per step: it stays valid until :meth:`window`, :meth:`advance` or :meth:`restore`
+    moves the stream, and a stale one raises at its block's end. :meth:`window` and
     :meth:`advance` serve compiled code, which reads many at once and says how many it used.
     The state is the generator's state where the block began plus the position in it.
     """
@@ -47,8 +52,8 @@ class UniformDraws:
         self.generator = generator
         self._rebase(0, _BLOCK)
 
-    def _rebase(self, skip: int, size: int) -> None:
-        """Start a fresh block of ``size`` numbers ``skip`` numbers after the current block's start."""
+    def _refill(self, skip: int, size: int) -> None:
+        """Fill a fresh block of ``size`` numbers ``skip`` numbers after the current block's start."""
         if skip:  # the generator is at the block start (see callers); move it past the numbers read
             bit_generator = self.generator.bit_generator
             if isinstance(bit_generator, np.random.PCG64):
@@ -62,21 +67,48 @@ class UniformDraws:
             self.generator.random(out=array)  # refilled in place: a long run never allocates another block
         else:
             self._array = self.generator.random(size)
-        self._block: list[float] | None = None
-        self._position = 0
+
+    def _rebase(self, skip: int, size: int) -> None:
+        self._refill(skip, size)
+        self._read_from(0)
+
+    def _read_from(self, position: int) -> None:
+        """Read on from ``position`` of the current block, through a fresh :attr:`draw`."""
+        self._base = position  # where the reader's list starts in the block
+        self._reader: Iterator[float] | None = None
+        self._reader_length = 0
+        self.draw: Callable[[], float] = chain.from_iterable(self._readers()).__next__
+
+    def _readers(self) -> Iterator[Iterator[float]]:
+        """The block's unread numbers as a list iterator, then each next block's, for :attr:`draw`."""
+        draw = self.draw
+        while True:
+            if self._base >= self._array.shape[0]:
+                self.generator.bit_generator.state = self._block_start_state
+                self._refill(self._base, _BLOCK)
+                self._base = 0
+            items = self._array[self._base :].tolist()
+            self._reader, self._reader_length = iter(items), len(items)
+            yield self._reader
+            if self.draw is not draw:
+                raise RuntimeError("this draw function is stale: the stream was moved since it was taken; take stream.draw again")
+            self._base += self._reader_length
+            self._reader = None
+
+    @property
+    def _position(self) -> int:
+        """How many numbers of the current block have been read."""
+        reader = self._reader
+        return self._base if reader is None else self._base + self._reader_length - length_hint(reader)
 
     def _restart_here(self, size: int) -> None:
+        position = self._position
         self.generator.bit_generator.state = self._block_start_state
-        self._rebase(self._position, size)
+        self._rebase(position, size)
 
     def next(self) -> float:
-        if self._block is None or self._position == len(self._block):
-            if self._position >= self._array.shape[0]:
-                self._restart_here(_BLOCK)
-            self._block = self._array.tolist()
-        u = self._block[self._position]
-        self._position += 1
-        return u
+        """The next uniform (hot loops call :attr:`draw` itself: one Python call fewer per number)."""
+        return self.draw()
 
     def window(self, n: int, block: int = _BLOCK) -> np.ndarray:
         """Every uniform left in the current block, at least ``n``, without consuming them.
@@ -91,9 +123,10 @@ class UniformDraws:
         return self._array[self._position :]
 
     def advance(self, used: int) -> None:
-        if not 0 <= used <= self._array.shape[0] - self._position:
-            raise ValueError(f"cannot consume {used} uniforms: {self._array.shape[0] - self._position} are left in the window")
-        self._position += int(used)
+        position = self._position
+        if not 0 <= used <= self._array.shape[0] - position:
+            raise ValueError(f"cannot consume {used} uniforms: {self._array.shape[0] - position} are left in the window")
+        self._read_from(position + int(used))
 
     def generator_state_here(self) -> dict[str, Any]:
         """The bit generator's state as if exactly the numbers read so far had been drawn one by one."""

@@ -64,6 +64,64 @@ def _pick(probabilities, lo, hi, u):
 
 
 @njit(cache=True)
+def update_episode(q, visits, weights, greedy, states, actions, rewards, probabilities, length, tail, variant, first_visit, gamma, step_size, first_time, counters):
+    """One episode's backward update (:mod:`qtally.control.variants`, the same sums in the same order); returns the steps used.
+
+    ``states`` to ``probabilities``: the episode's first ``length`` steps, as arrays or
+    buffers. ``greedy``: the greedy action of every state, kept in step as ``q`` changes
+    (empty: none kept; the off-policy cut reads the row). ``first_time``: scratch of
+    ``q.size`` entries, all -1 between calls. ``counters[1]`` counts the pairs whose visits
+    go from 0 to 1. ``step_size`` < 0 means the sample average.
+    """
+    n_actions = q.shape[1]
+    keep_greedy = greedy.shape[0] > 0
+    if length <= 0:
+        return 0
+    if first_visit:
+        for t in range(length):
+            key = states[t] * n_actions + actions[t]
+            if first_time[key] < 0:
+                first_time[key] = t
+    used = 0
+    g = tail
+    w = 1.0
+    for t in range(length - 1, -1, -1):
+        s = states[t]
+        a = actions[t]
+        g = gamma * g + rewards[t]
+        counted = (not first_visit) or first_time[s * n_actions + a] == t
+        if variant == OFF_POLICY:
+            if counted:
+                weights[s, a] += w
+                visits[s, a] += 1
+                if visits[s, a] == 1:
+                    counters[1] += 1
+                step = w / weights[s, a] if step_size < 0.0 else min(1.0, step_size * w)
+                q[s, a] += step * (g - q[s, a])
+                if keep_greedy:
+                    greedy[s] = _greedy(q, s)
+            used += 1
+            best = greedy[s] if keep_greedy else _greedy(q, s)
+            if a != best:
+                break
+            w /= probabilities[t]
+        elif counted:
+            visits[s, a] += 1
+            if visits[s, a] == 1:
+                counters[1] += 1
+            step = 1.0 / visits[s, a] if step_size < 0.0 else step_size
+            q[s, a] += step * (g - q[s, a])
+            if keep_greedy:
+                greedy[s] = _greedy(q, s)
+    if variant != OFF_POLICY:
+        used = length
+    if first_visit:
+        for t in range(length):
+            first_time[states[t] * n_actions + actions[t]] = -1
+    return used
+
+
+@njit(cache=True)
 def learn_episodes(
     n_episodes, episode_before,
     offsets, next_states, probabilities, rewards, opening_rewards, terminated, start_states, start_probabilities, es_starts,
@@ -88,6 +146,7 @@ def learn_episodes(
     """
     n_actions = q.shape[1]
     max_length = buffer_states.shape[0]
+    no_greedy = np.zeros(0, dtype=np.int64)  # the kernel reads greedy actions off q as it acts
     env_used = 0
     acting_used = 0
     start_used = 0
@@ -176,43 +235,11 @@ def learn_episodes(
             learn = False
         # ---------------------------------------------------------- update
         used = 0
-        if learn and length > 0:
-            if first_visit:
-                for t in range(length):
-                    key = buffer_states[t] * n_actions + buffer_actions[t]
-                    if first_time[key] < 0:
-                        first_time[key] = t
-            g = tail
-            w = 1.0
-            for t in range(length - 1, -1, -1):
-                s = buffer_states[t]
-                a = buffer_actions[t]
-                g = gamma * g + buffer_rewards[t]
-                counted = (not first_visit) or first_time[s * n_actions + a] == t
-                if variant == OFF_POLICY:
-                    if counted:
-                        weights[s, a] += w
-                        visits[s, a] += 1
-                        if visits[s, a] == 1:
-                            counters[1] += 1
-                        step = w / weights[s, a] if step_size < 0.0 else min(1.0, step_size * w)
-                        q[s, a] += step * (g - q[s, a])
-                    used += 1
-                    if a != _greedy(q, s):
-                        break
-                    w /= buffer_probabilities[t]
-                else:
-                    if counted:
-                        visits[s, a] += 1
-                        if visits[s, a] == 1:
-                            counters[1] += 1
-                        step = 1.0 / visits[s, a] if step_size < 0.0 else step_size
-                        q[s, a] += step * (g - q[s, a])
-            if variant != OFF_POLICY:
-                used = length
-            if first_visit:
-                for t in range(length):
-                    first_time[buffer_states[t] * n_actions + buffer_actions[t]] = -1
+        if learn:
+            used = update_episode(
+                q, visits, weights, no_greedy, buffer_states, buffer_actions, buffer_rewards, buffer_probabilities,
+                length, tail, variant, first_visit, gamma, step_size, first_time, counters,
+            )
         window[0] += 1
         window[1] += total
         window[2] += length

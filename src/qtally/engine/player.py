@@ -79,7 +79,7 @@ class EpisodePlayer:
         variant, schedule, n_actions = self.variant, self.schedule, self.n_actions
         if greedy is None:
             greedy = q.argmax(axis=1).tolist()
-        next_uniform = acting.next
+        next_uniform = acting.draw  # taken each episode: a checkpoint's restore between episodes makes a new one
 
         start_observation = first_action = None
         start_state = None

@@ -1,0 +1,106 @@
+"""The gym path's two updates, the variants' Python loops and the compiled engine's, give the same floats.
+
+The trainer hands an episode of at least ``COMPILED_FROM`` steps to the compiled update
+(:mod:`qtally.engine.compiled_update`) and a shorter one to the Python loop, so which one
+ran must never show in a Q table. Which bug each test catches: any change of arithmetic or
+order between the two (a return summed the other way, a step size, a weight added after
+the step, a tail), a first-visit rule that counts a repeated pair twice or never, the
+weighted-IS cut one step early or late, the count of steps used, a greedy action kept out
+of step with ``q``, and a trainer that forgets what the update changed.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from qtally.control.action_values import ActionValues
+from qtally.control.schedules import Constant
+from qtally.control.variants import ExploringStarts, OffPolicy, OnPolicy
+from qtally.engine import kernels  # noqa: F401  (loaded, so every trainer here takes the compiled update for long episodes)
+from qtally.engine.compiled_update import REPAYS_LOADING, CompiledUpdate
+from qtally.envs.factory import EnvironmentSpec, make_environment
+from qtally.trainer import Trainer, TrainingSettings
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    variant_class=st.sampled_from([ExploringStarts, OnPolicy, OffPolicy]),
+    first_visit=st.booleans(),
+    step_size=st.sampled_from([None, 0.1, 1.0]),
+    gamma=st.sampled_from([1.0, 0.9]),
+    integer_rewards=st.booleans(),
+)
+def test_the_compiled_update_equals_the_python_loop_bit_for_bit(seed, variant_class, first_visit, step_size, gamma, integer_rewards):
+    # Few states and long episodes: pairs repeat within an episode (first visit matters);
+    # integer rewards make ties of the greedy action common, real ones make the order of
+    # the sums show in the last bits.
+    rng = np.random.default_rng(seed)
+    n_states, n_actions = 5, 3
+    python, compiled = ActionValues.zeros(n_states, n_actions), ActionValues.zeros(n_states, n_actions)
+    variant = variant_class(gamma=gamma, first_visit=first_visit, step_size=step_size)
+    update = CompiledUpdate(variant)
+    for _ in range(30):
+        length = int(rng.integers(1, 25))
+        states = rng.integers(n_states, size=length).tolist()
+        actions = rng.integers(n_actions, size=length).tolist()
+        rewards = (rng.integers(-2, 3, size=length).astype(float) if integer_rewards else rng.normal(size=length)).tolist()
+        behaviour = rng.choice([0.25, 0.5, 0.9, 1.0], size=length).tolist()
+        tail = float(rng.choice([0.0, rng.normal()]))
+        used = variant.update_lists(python, states, actions, rewards, behaviour, tail)
+        assert update.update_lists(compiled, states, actions, rewards, behaviour, tail) == used
+        for name in ("q", "visits", "cumulative_weights"):
+            np.testing.assert_array_equal(getattr(compiled, name), getattr(python, name), err_msg=name)
+        assert compiled.greedy.tolist() == python.greedy.tolist() == python.q.argmax(axis=1).tolist()
+
+
+@pytest.mark.parametrize("variant_class", [ExploringStarts, OnPolicy, OffPolicy])
+def test_a_restock_run_ends_the_same_whichever_update_learned_its_long_seasons(variant_class, monkeypatch):
+    # A season is 14 days (7.5 on average from an exploring start): with the threshold in
+    # place nearly every episode goes to the compiled update; raised past any length, none.
+    def run(threshold: int):
+        monkeypatch.setattr("qtally.trainer.COMPILED_FROM", threshold)
+        settings = TrainingSettings(episodes=400, seed=3, log_every=50, eval_every=0, eval_episodes=3, engine="gym")
+        variant = variant_class(gamma=1.0, first_visit=variant_class is not OffPolicy, step_size=None)
+        trainer = Trainer(make_environment(EnvironmentSpec(id="qtally/Restock-v0")), variant, Constant(0.2), settings)
+        outcome = trainer.run()
+        return trainer.state.values, outcome.history
+
+    (mixed, mixed_history), (python, python_history) = run(4), run(10**9)
+    for name in ("q", "visits", "cumulative_weights", "state_visits"):
+        np.testing.assert_array_equal(getattr(mixed, name), getattr(python, name), err_msg=name)
+    assert mixed_history == python_history
+    assert np.count_nonzero(python.visits) > 100  # the runs learned something to compare
+
+
+def test_numba_is_loaded_only_where_it_repays_loading(monkeypatch):
+    # Loading numba costs more than a short run saves, so a process that has not loaded it
+    # loads it only for a long run; once loaded, every run uses it.
+    monkeypatch.delitem(sys.modules, "numba")
+    short, long = CompiledUpdate(OnPolicy(gamma=1.0)), CompiledUpdate(OnPolicy(gamma=1.0))
+    assert not short.load_if_it_pays(REPAYS_LOADING - 1) and not short.ready
+    assert long.load_if_it_pays(REPAYS_LOADING) and long.ready
+    monkeypatch.undo()
+    assert short.load_if_it_pays(0)
+
+
+def test_a_short_gym_run_in_a_fresh_process_never_loads_numba():
+    script = (
+        "import sys\n"
+        "from qtally.control.schedules import Constant\n"
+        "from qtally.control.variants import OnPolicy\n"
+        "from qtally.envs.factory import EnvironmentSpec, make_environment\n"
+        "from qtally.trainer import Trainer, TrainingSettings\n"
+        "settings = TrainingSettings(episodes=300, seed=1, log_every=100, eval_every=0, eval_episodes=2, engine='gym')\n"
+        "Trainer(make_environment(EnvironmentSpec(id='qtally/Restock-v0')), OnPolicy(gamma=1.0), Constant(0.1), settings).run()\n"
+        "print('numba' in sys.modules)\n"
+    )
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "False"
