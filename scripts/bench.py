@@ -10,7 +10,9 @@ JSON file (``--out``, default ``bench-results/``):
    environment's own work; the run and its replay are timed in alternating slices, so a
    slow spell of a shared machine falls on both sides. (b) is reported too, but a random
    policy plays episodes of another length (on Blackjack it hits more), so it mixes
-   overhead with a different workload.
+   overhead with a different workload. numba is loaded first, as in a run long enough to
+   repay loading it, so long episodes are learned by the compiled update; the same run with
+   the Python loop for every episode (what a short run in a fresh process gets) is timed too.
 2. **compiled vs gym.** The compiled engine's steps per second against the gym path's, and
    against a minimal compiled kernel written here (``qtally.engine.kernels.reference_kernel``:
    epsilon-greedy steps on the same table, nothing recorded or learned), the limit of this
@@ -139,8 +141,11 @@ def _bare_random(spec, episodes: int) -> tuple[float, int]:
     return time.perf_counter() - start, steps
 
 
-def _interleaved(name: str, variant_name: str, episodes: int, replay: "_BareReplay", chunks: int):
+def _interleaved(name: str, variant_name: str, episodes: int, replay: "_BareReplay", chunks: int, python_update: bool = False):
     """Seconds of one training run and of its bare replay, timed in ``chunks`` alternating slices.
+
+    ``python_update``: the variant's Python loop learns from every episode, as in a run too
+    short to repay loading numba in a fresh process (:mod:`qtally.engine.compiled_update`).
 
     The run pauses between slices (``Trainer.run(pause_at=...)``, as a checkpoint does) and
     the bare loop plays the same slice of episodes; which side goes first alternates. A
@@ -148,6 +153,8 @@ def _interleaved(name: str, variant_name: str, episodes: int, replay: "_BareRepl
     virtual machines this was written on) then lands on both sides of the ratio.
     """
     trainer = _trainer(name, variant_name, episodes, "gym")
+    if python_update:
+        trainer.long_episode_update = None
     bounds = [round(episodes * k / chunks) for k in range(chunks + 1)]
     train_seconds = replay_seconds = 0.0
     outcome = None
@@ -165,8 +172,13 @@ def _interleaved(name: str, variant_name: str, episodes: int, replay: "_BareRepl
 def gym_against_bare(scale: float, repeats: int) -> list[dict]:
     """Each repeat times a training run against a bare replay of its episodes, interleaved, and a random-action loop.
 
-    The median of the per-repeat ratios is what the table reports.
+    The median of the per-repeat ratios is what the table reports. numba is loaded first, as
+    in a run whose steps repay loading it (or one that loaded it already): long episodes
+    are then learned from by the compiled update. Each repeat also times the same run with
+    the Python loop for every episode, what a shorter run in a fresh process gets.
     """
+    from qtally.engine import kernels  # noqa: F401  (loaded: see the docstring)
+
     rows = []
     for name in ENVS:
         episodes = max(10, int(GYM_EPISODES[name] * scale))
@@ -174,8 +186,10 @@ def gym_against_bare(scale: float, repeats: int) -> list[dict]:
         for variant_name in VARIANTS:
             spec, env_seed, played = _recorded_episodes(name, variant_name, episodes)
             _trainer(name, variant_name, min(episodes, 10), "gym").run()  # warm-up
-            train_times, same, random_steps_ratio, random_episodes_ratio = [], [], [], []
+            train_times, same, same_python, random_steps_ratio, random_episodes_ratio = [], [], [], [], []
             for _ in range(repeats):
+                train_seconds, replay_seconds, _ = _interleaved(name, variant_name, episodes, _BareReplay(spec, env_seed, played), chunks, python_update=True)
+                same_python.append(replay_seconds / train_seconds)
                 train_seconds, replay_seconds, outcome = _interleaved(name, variant_name, episodes, _BareReplay(spec, env_seed, played), chunks)
                 steps = _steps(outcome)
                 random_seconds, random_steps = _bare_random(spec, episodes)
@@ -189,10 +203,13 @@ def gym_against_bare(scale: float, repeats: int) -> list[dict]:
                 "train_steps_per_s": steps / train_seconds, "train_episodes_per_s": episodes / train_seconds,
                 "same_episodes_ratio": statistics.median(same),
                 "same_episodes_ratio_range": [min(same), max(same)],
+                "same_episodes_ratio_python_update": statistics.median(same_python),
+                "same_episodes_ratio_python_update_range": [min(same_python), max(same_python)],
                 "random_actions_steps_ratio": statistics.median(random_steps_ratio),
                 "random_actions_episodes_ratio": statistics.median(random_episodes_ratio),
             })
-            print(f"  gym  {name:16s} {variant_name:17s} {rows[-1]['same_episodes_ratio']:.2f} of bare (same episodes; {min(same):.2f} to {max(same):.2f})", flush=True)
+            print(f"  gym  {name:16s} {variant_name:17s} {rows[-1]['same_episodes_ratio']:.2f} of bare (same episodes; {min(same):.2f} to {max(same):.2f}); "
+                  f"Python update only {rows[-1]['same_episodes_ratio_python_update']:.2f}", flush=True)
     return rows
 
 
@@ -413,15 +430,17 @@ def markdown(results: dict) -> str:
         f"Measured by `python scripts/bench.py{' --quick' if results['quick'] else ''}`: {v['cores']} cores, Python {v['python']}, numpy {v['numpy']}, "
         f"numba {v['numba']}, gymnasium {v['gymnasium']}; medians of {results['repeats']} runs.",
         "",
-        "| environment | variant | gym path, steps/s | of bare stepping (same episodes; lowest–highest repeat) | of bare stepping (random actions, steps/s) | compiled, steps/s | compiled over gym | compiled of minimal kernel (lowest–highest repeat) |",
-        "|---|---|---:|---:|---:|---:|---:|---:|",
+        "| environment | variant | gym path, steps/s | of bare stepping (same episodes; lowest–highest repeat) | the same, Python update only | of bare stepping (random actions, steps/s) | compiled, steps/s | compiled over gym | compiled of minimal kernel (lowest–highest repeat) |",
+        "|---|---|---:|---:|---:|---:|---:|---:|---:|",
     ]
     compiled = {(r["env"], r["variant"]): r for r in results["compiled"]}
     for row in results["gym"]:
         c = compiled[(row["env"], row["variant"])]
         low, high = row["same_episodes_ratio_range"]
+        python_low, python_high = row["same_episodes_ratio_python_update_range"]
         lines.append(
-            f"| {row['env']} | {row['variant']} | {row['train_steps_per_s']:,.0f} | {row['same_episodes_ratio']:.2f} ({low:.2f}–{high:.2f}) | {row['random_actions_steps_ratio']:.2f} "
+            f"| {row['env']} | {row['variant']} | {row['train_steps_per_s']:,.0f} | {row['same_episodes_ratio']:.2f} ({low:.2f}–{high:.2f}) "
+            f"| {row['same_episodes_ratio_python_update']:.2f} ({python_low:.2f}–{python_high:.2f}) | {row['random_actions_steps_ratio']:.2f} "
             f"| {c['compiled_steps_per_s']:,.0f} | {c['over_gym']:.0f}x | {c['of_reference']:.2f} ({c['of_reference_range'][0]:.2f}–{c['of_reference_range'][1]:.2f}) |"
         )
     memory = results["memory"]

@@ -148,8 +148,10 @@ class Trainer:
         elif self.state.episode == 0:
             self.episodes.seed(self.state.streams.env_seed)
         self.player = EpisodePlayer(self.episodes, variant, schedule, self.start_states) if self.engine == "gym" else None
-        # Long episodes are learned from by the compiled engine's update (same floats, fewer microseconds).
-        self._long_update = CompiledUpdate(variant) if self.engine == "gym" else None
+        # Long episodes are learned from by the compiled engine's update (same floats, fewer
+        # microseconds) once numba is loaded or the steps left repay loading it; None: the
+        # variant's Python loop learns from every episode.
+        self.long_episode_update: CompiledUpdate | None = CompiledUpdate(variant) if self.engine == "gym" else None
         self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
 
     # ------------------------------------------------------------ pieces
@@ -223,12 +225,12 @@ class Trainer:
         used = 0
         if tail is not None:
             update = variant
-            long_update = self._long_update
+            long_update = self.long_episode_update
             if long_update is not None and len(played.states) >= COMPILED_FROM:
                 if long_update.ready or long_update.load_if_it_pays((self.settings.episodes - episode) * len(played.states)):
                     update = long_update
                 else:
-                    self._long_update = None  # decided once: too few steps left to repay loading numba
+                    self.long_episode_update = None  # decided once: too few steps left to repay loading numba
             used = update.update_lists(values, played.states, played.actions, played.rewards, played.probabilities, tail)
         state.capped_episodes += played.capped
         decisions = experience.decisions

@@ -21,10 +21,11 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
     assert {"gym", "compiled", "compile", "memory", "recording", "versions"} <= data.keys()
     assert len(data["gym"]) == len(data["compiled"]) == 9
     for row in data["gym"]:
-        for key in ("same_episodes_ratio", "random_actions_steps_ratio", "train_steps_per_s"):
+        for key in ("same_episodes_ratio", "same_episodes_ratio_python_update", "random_actions_steps_ratio", "train_steps_per_s"):
             assert math.isfinite(row[key]) and row[key] > 0, (row, key)
-        low, high = row["same_episodes_ratio_range"]  # the median of the per-repeat ratios lies among them
-        assert low <= row["same_episodes_ratio"] <= high, row
+        for key in ("same_episodes_ratio", "same_episodes_ratio_python_update"):
+            low, high = row[f"{key}_range"]  # the median of the per-repeat ratios lies among them
+            assert low <= row[key] <= high, (row, key)
     for row in data["compiled"]:
         assert row["over_gym"] > 1.0, row  # compiled code slower than Python would be a broken engine, not noise
         assert 0 < row["of_reference"] and math.isfinite(row["of_reference"])

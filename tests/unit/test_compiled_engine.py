@@ -33,7 +33,7 @@ def _train(spec, variant, first_visit, schedule, engine, *, episodes=1500, trunc
     assert trainer.engine == engine
     # The gym side learns through the variants' Python loops only, so every update here is
     # checked against the kernel's (test_compiled_update.py covers the gym path's mix).
-    trainer._long_update = None
+    trainer.long_episode_update = None
     outcome = trainer.run(pause_at=pause_at)
     return trainer, outcome
 

@@ -39,8 +39,10 @@ def _backward_update(values: ActionValues, states: list, actions: list, rewards:
     :func:`~qtally.control.returns.discounted_returns`, is the reference in the tests).
     ``weighted``: the off-policy update, with step ``W / C`` (or ``min(1, step * W)``),
     stopped after the first step whose action the greedy target would not take.
-    The greedy list (:attr:`ActionValues.greedy`) is kept in step here, inline: this runs
-    for every step of every episode, and a call per update cost a tenth of the loop.
+    The greedy actions (:attr:`ActionValues.greedy`) are kept in step here, inline: this runs
+    for every step of every episode, and a call per update cost a tenth of the loop. The
+    trainer hands long episodes to the compiled engine's update instead
+    (:mod:`qtally.engine.compiled_update`), which does the same sums in the same order.
     """
     last = len(states) - 1
     if last < 0:

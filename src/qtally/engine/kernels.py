@@ -6,7 +6,8 @@ is the same as the Python path's, in the same order, so both produce the same fl
 the acting decision (:func:`qtally.policy.table_policy.epsilon_greedy_decision`), the
 schedules (:mod:`qtally.control.schedules`), the tail value (:mod:`qtally.control.truncation`
 and each variant's ``tail_value``) and the backward updates (:mod:`qtally.control.variants`).
-The tests hold the two paths to equality, Q table bit for bit.
+The tests hold the two paths to equality, Q table bit for bit. :func:`update_episode` also
+serves the gym path for long episodes (:mod:`qtally.engine.compiled_update`).
 
 Uniforms come in windows from three streams (environment, acting, starts); the kernel
 stops before an episode that might run out of any and says how many it read.
