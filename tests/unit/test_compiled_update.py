@@ -90,6 +90,16 @@ def test_numba_is_loaded_only_where_it_repays_loading(monkeypatch):
     assert short.load_if_it_pays(0)
 
 
+def test_a_variant_of_another_class_keeps_its_own_update():
+    # A subclass may change the update: the kernel's would then learn something else.
+    class Halved(OnPolicy):
+        def update_lists(self, values, states, actions, rewards, probabilities, tail_value):
+            return super().update_lists(values, states, actions, [r / 2 for r in rewards], probabilities, tail_value)
+
+    assert not CompiledUpdate(Halved(gamma=1.0)).load_if_it_pays(10**9)
+    assert CompiledUpdate(OnPolicy(gamma=1.0)).load_if_it_pays(10**9)
+
+
 def test_a_short_gym_run_in_a_fresh_process_never_loads_numba():
     script = (
         "import sys\n"

@@ -22,6 +22,7 @@ from importlib.util import find_spec
 import numpy as np
 
 from ..control.action_values import ActionValues
+from ..control.variants import ExploringStarts, OffPolicy, OnPolicy
 
 __all__ = ["COMPILED_FROM", "REPAYS_LOADING", "CompiledUpdate"]
 
@@ -38,7 +39,8 @@ class CompiledUpdate:
 
     numba is loaded by :meth:`load_if_it_pays`, not before: a run whose episodes are all
     short (Blackjack hands) or few never pays for it. :attr:`available` is false where
-    numba is missing; the Python loop then does every update.
+    numba is missing or the variant is not one of the kernel's; the Python loop then does
+    every update.
     """
 
     def __init__(self, variant):
@@ -47,7 +49,9 @@ class CompiledUpdate:
         self._first_time: np.ndarray | None = None  # scratch of one entry per pair, -1 between calls
         self._counters = np.zeros(2, dtype=np.int64)  # the kernel's coverage count; unused here
         self._unread = array("d")  # what stands for the behaviour probabilities where nothing reads them
-        self.available = find_spec("numba") is not None  # found, not imported: kernels load at the first update
+        # numba found (not imported: kernels load at the first update), and a variant whose update
+        # the kernel has: a subclass may have changed it, so only the three classes themselves.
+        self.available = find_spec("numba") is not None and type(variant) in (ExploringStarts, OnPolicy, OffPolicy)
 
     @property
     def ready(self) -> bool:
