@@ -26,7 +26,7 @@ from ..control.streams import UniformDraws
 from ..control.trainer_state import LogWindow, TrainerState
 from ..envs.outcomes import OutcomeTable
 
-__all__ = ["ENGINE_CHOICES", "ClosedWindow", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "variant_code", "time_limit_of"]
+__all__ = ["ENGINE_CHOICES", "ClosedWindow", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "step_size_code", "variant_code", "time_limit_of"]
 
 ENGINE_CHOICES = ("auto", "gym", "compiled")
 _WINDOW = 1 << 16  # uniforms per block of each stream the kernel reads (512 KiB): few refills, and a fixed size whatever the run length
@@ -44,6 +44,11 @@ def variant_code(variant) -> int:
     if name not in codes:
         raise EngineUnavailable(f"the compiled engine knows the variants {', '.join(codes)}, not {name!r}")
     return codes[name]
+
+
+def step_size_code(variant) -> float:
+    """The variant's step size as the kernels take it: negative for the sample average."""
+    return -1.0 if variant.step_size is None else float(variant.step_size)
 
 
 def schedule_code(schedule) -> tuple[int, float, float, float]:
@@ -154,7 +159,7 @@ class CompiledEpisodes:
         truncation_code = {"as_terminal": k.AS_TERMINAL, "bootstrap": k.BOOTSTRAP, "discard": k.DISCARD}[truncation]
         if code == k.EXPLORING_STARTS and not self.exploring_starts.size:
             raise EngineUnavailable("exploring starts need start states; this environment lists none")
-        step_size = -1.0 if variant.step_size is None else float(variant.step_size)
+        step_size = step_size_code(variant)
         values, streams, table = state.values, state.streams, self.table
         window = _window_array(state.window)
         episode_before = state.episode

@@ -65,14 +65,14 @@ class CompiledUpdate:
 
     def _load(self) -> None:
         from . import kernels
-        from .compiled import variant_code
+        from .compiled import step_size_code, variant_code
 
         variant = self.variant
         self._code = variant_code(variant)
         self._weighted = self._code == kernels.OFF_POLICY  # only importance sampling reads the behaviour probabilities
         self._first_visit = bool(variant.first_visit)
         self._gamma = float(variant.gamma)
-        self._step_size = -1.0 if variant.step_size is None else float(variant.step_size)
+        self._step_size = step_size_code(variant)
         self._update = kernels.update_episode
 
     def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float) -> int:
