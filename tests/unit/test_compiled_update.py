@@ -20,7 +20,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qtally.control.action_values import ActionValues
-from qtally.control.schedules import Constant
+from qtally.control.schedules import Constant, GlieVisits
 from qtally.control.variants import ExploringStarts, OffPolicy, OnPolicy
 from qtally.engine import kernels  # noqa: F401  (loaded, so every trainer here takes the compiled update for long episodes)
 from qtally.engine.compiled_update import REPAYS_LOADING, CompiledUpdate
@@ -54,8 +54,12 @@ def test_the_compiled_update_equals_the_python_loop_bit_for_bit(seed, variant_cl
         behaviour = rng.choice([0.25, 0.5, 0.9, 1.0], size=length).tolist()
         tail = float(rng.choice([0.0, rng.normal()]))
         used = variant.update_lists(python, states, actions, rewards, behaviour, tail)
-        assert update.update_lists(compiled, states, actions, rewards, behaviour, tail) == used
-        for name in ("q", "visits", "cumulative_weights"):
+        count_visits = bool(rng.integers(2))  # the trainer's own loop counts them when the update does not
+        assert update.update_lists(compiled, states, actions, rewards, behaviour, tail, count_visits=count_visits) == used
+        for s in states:
+            python.state_visits[s] += 1
+            compiled.state_visits[s] += not count_visits
+        for name in ("q", "visits", "cumulative_weights", "state_visits"):
             np.testing.assert_array_equal(getattr(compiled, name), getattr(python, name), err_msg=name)
         assert compiled.greedy.tolist() == python.greedy.tolist() == python.q.argmax(axis=1).tolist()
 
@@ -77,6 +81,34 @@ def test_a_restock_run_ends_the_same_whichever_update_learned_its_long_seasons(v
         np.testing.assert_array_equal(getattr(mixed, name), getattr(python, name), err_msg=name)
     assert mixed_history == python_history
     assert np.count_nonzero(python.visits) > 100  # the runs learned something to compare
+
+
+@pytest.mark.parametrize("truncation", ["bootstrap", "discard"])
+def test_cut_episodes_count_their_visits_once_whichever_update_learned_them(truncation, monkeypatch):
+    # A step cap of 6 cuts most FrozenLake 8x8 episodes at 6 steps, long enough for the
+    # compiled update. Started at 1.0, the table learns only from the tails. A bootstrapped tail's epsilon (a per-state schedule) reads the visit
+    # counts with the episode's own visits in, so the trainer counts them itself before
+    # it; a discarded episode is counted without any update. The compiled engine, which
+    # counts while playing, is the independent check: counted late, twice or not at all,
+    # the tails, the epsilons and the counts would differ from it.
+    def run(threshold: int, engine: str):
+        monkeypatch.setattr("qtally.trainer.COMPILED_FROM", threshold)
+        settings = TrainingSettings(episodes=300, seed=5, log_every=50, eval_every=0, eval_episodes=2, engine=engine, truncation=truncation, step_cap=6, initial_value=1.0)
+        schedule = GlieVisits(scale=2.0, floor=0.05)
+        trainer = Trainer(make_environment(EnvironmentSpec(id="FrozenLake-v1", kwargs={"map_name": "8x8"})), OnPolicy(gamma=0.95), schedule, settings)
+        outcome = trainer.run()
+        return trainer.state.values, outcome.history
+
+    runs = [run(4, "gym"), run(10**9, "gym"), run(4, "compiled")]
+    (reference, reference_history) = runs[-1]
+    for values, history in runs[:-1]:
+        for name in ("q", "visits", "state_visits"):
+            np.testing.assert_array_equal(getattr(values, name), getattr(reference, name), err_msg=name)
+        assert history == reference_history
+    assert reference.state_visits.sum() > 6 * 250  # nearly every episode ran to the cap
+    # No reward within 6 steps: the table moves off its initial 1.0 only through the tails
+    # (or, discarded, not at all), and a row's uneven values make its tail depend on epsilon.
+    assert (np.count_nonzero(reference.q != 1.0) > 50) == (truncation == "bootstrap")
 
 
 def test_numba_is_loaded_only_where_it_repays_loading(monkeypatch):

@@ -3,7 +3,7 @@
 The variants' Python loops (:mod:`qtally.control.variants`) cost about half a microsecond
 per step; :func:`qtally.engine.kernels.update_episode`, the update the compiled engine
 runs, costs a couple of microseconds per call (handing the lists over) and little per
-step. The trainer takes it for episodes of at least :data:`COMPILED_FROM` steps and the
+step, and counts the episode's state visits on the way. The trainer takes it for episodes of at least :data:`COMPILED_FROM` steps and the
 Python loop for shorter ones. Both do the same sums in the same order, so the choice
 never changes a float of the Q table (the tests hold them equal).
 
@@ -16,7 +16,6 @@ left are at least :data:`REPAYS_LOADING` (:meth:`CompiledUpdate.load_if_it_pays`
 from __future__ import annotations
 
 import sys
-from array import array
 from importlib.util import find_spec
 
 import numpy as np
@@ -47,8 +46,9 @@ class CompiledUpdate:
         self.variant = variant
         self._update = None
         self._first_time: np.ndarray | None = None  # scratch of one entry per pair, -1 between calls
+        self._first_time_of: np.ndarray | None = None  # the Q table it was made for
         self._counters = np.zeros(2, dtype=np.int64)  # the kernel's coverage count; unused here
-        self._unread = array("d")  # what stands for the behaviour probabilities where nothing reads them
+        self._unread = np.zeros(0)  # what stands for the behaviour probabilities where nothing reads them
         # numba found (not imported: kernels load at the first update), and a variant whose update
         # the kernel has: a subclass may have changed it, so only the three classes themselves.
         self.available = find_spec("numba") is not None and type(variant) in (ExploringStarts, OnPolicy, OffPolicy)
@@ -75,13 +75,21 @@ class CompiledUpdate:
         self._step_size = step_size_code(variant)
         self._update = kernels.update_episode
 
-    def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float) -> int:
+    def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float, *, count_visits: bool = False) -> int:
+        """The variant's ``update_lists``; ``count_visits`` also adds each step's state to ``values.state_visits``.
+
+        The lists go over as numpy arrays (``np.fromiter``): numba types an array argument
+        in a fraction of the time it takes for a buffer such as ``array.array``.
+        """
         if self._update is None:
             self._load()
-        if self._first_time is None or self._first_time.shape[0] != values.q.size:
-            self._first_time = np.full(values.q.size, -1, dtype=np.int64)
+        q = values.q
+        if q is not self._first_time_of:  # a new table (a restored state): scratch of its size
+            self._first_time, self._first_time_of = np.full(q.size, -1, dtype=np.int64), q
+        length = len(states)
         return self._update(
-            values.q, values.visits, values.cumulative_weights, values.greedy_array,
-            array("q", states), array("q", actions), array("d", rewards), array("d", probabilities) if self._weighted else self._unread, len(states),
+            q, values.visits, values.cumulative_weights, values.greedy_array, values.state_visits if count_visits else None,
+            np.fromiter(states, np.int64, length), np.fromiter(actions, np.int64, length), np.fromiter(rewards, np.float64, length),
+            np.fromiter(probabilities, np.float64, length) if self._weighted else self._unread, length,
             float(tail_value), self._code, self._first_visit, self._gamma, self._step_size, self._first_time, self._counters,
         )

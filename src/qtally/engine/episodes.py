@@ -146,22 +146,9 @@ class GymEpisodes:
         if inline:
             greedy, epsilon, n_actions, next_uniform = choose.greedy, choose.epsilon, choose.n_actions, choose.next_uniform
             explore, exploit = choose.explore, choose.exploit
-        forced = first_action is not None
-        if forced:
-            action, probability = int(first_action), 1.0
+        # The first action outside the loop, the others at the loop's end: no test for a forced one per step.
+        action, probability = (int(first_action), 1.0) if first_action is not None else choose(state)
         while True:
-            if forced:
-                forced = False
-            elif inline:
-                best = greedy[state]
-                u = next_uniform()
-                if u < epsilon:
-                    action = min(int(u / epsilon * n_actions), n_actions - 1)
-                    probability = exploit if action == best else explore
-                else:
-                    action, probability = best, exploit
-            else:
-                action, probability = choose(state)
             observation, reward, terminated, truncated, _ = step(action)
             add_state(state)
             add_action(action)
@@ -175,5 +162,15 @@ class GymEpisodes:
                 truncated = True
                 capped = not self._limit_first
                 break
+            if inline:
+                best = greedy[state]
+                u = next_uniform()
+                if u < epsilon:
+                    action = min(int(u / epsilon * n_actions), n_actions - 1)
+                    probability = exploit if action == best else explore
+                else:
+                    action, probability = best, exploit
+            else:
+                action, probability = choose(state)
         # Positional: keyword construction costs three times as much, once per episode.
         return PlayedEpisode(states, actions, rewards, probabilities, float(sum(rewards)), bool(terminated), bool(truncated and not terminated), capped, state)

@@ -65,19 +65,24 @@ def _pick(probabilities, lo, hi, u):
 
 
 @njit(cache=True, inline="always")  # inlined into learn_episodes: a call per episode cost it a tenth on Blackjack
-def update_episode(q, visits, weights, greedy, states, actions, rewards, probabilities, length, tail, variant, first_visit, gamma, step_size, first_time, counters):
+def update_episode(q, visits, weights, greedy, state_visits, states, actions, rewards, probabilities, length, tail, variant, first_visit, gamma, step_size, first_time, counters):
     """One episode's backward update (:mod:`qtally.control.variants`, the same sums in the same order); returns the steps used.
 
     ``states`` to ``probabilities``: the episode's first ``length`` steps, as arrays or
     buffers. ``greedy``: the greedy action of every state, kept in step as ``q`` changes
     (``None``: none kept, the off-policy cut reads the row; numba then compiles the
-    bookkeeping away, which the compiled engine's short Blackjack hands notice). ``first_time``: scratch of
+    bookkeeping away, which the compiled engine's short Blackjack hands notice).
+    ``state_visits``: the per-state visit counts, to which every step's state adds one
+    (``None``: the caller counts them, as the compiled engine does while playing). ``first_time``: scratch of
     ``q.size`` entries, all -1 between calls. ``counters[1]`` counts the pairs whose visits
     go from 0 to 1. ``step_size`` < 0 means the sample average.
     """
     n_actions = q.shape[1]
     if length <= 0:
         return 0
+    if state_visits is not None:
+        for t in range(length):
+            state_visits[states[t]] += 1
     if first_visit:
         for t in range(length):
             key = states[t] * n_actions + actions[t]
@@ -237,7 +242,7 @@ def learn_episodes(
         used = 0
         if learn:
             used = update_episode(
-                q, visits, weights, None, buffer_states, buffer_actions, buffer_rewards, buffer_probabilities,
+                q, visits, weights, None, None, buffer_states, buffer_actions, buffer_rewards, buffer_probabilities,
                 length, tail, variant, first_visit, gamma, step_size, first_time, counters,
             )
         window[0] += 1

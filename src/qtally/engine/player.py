@@ -5,8 +5,8 @@ play through :meth:`EpisodePlayer.play`, so an episode is the same whoever plays
 same draws from the same streams (one acting uniform per decision, one start uniform per
 exploring start, the environment's own generator), the same epsilon and the same
 recorded behaviour probabilities. The player reads the Q table and the per-state visit
-counts it is given and changes neither: what the episode adds to the counts comes back
-in :attr:`Experience.visited`, and the learner applies it with the update.
+counts it is given and changes neither: the episode's states are what it adds to the
+counts, and the learner applies them with the update.
 
 That split is what lets a batch of episodes be played in parallel with one snapshot of
 the acting policy and learned from afterwards, in episode order: the probabilities
@@ -33,15 +33,14 @@ __all__ = ["Experience", "EpisodePlayer"]
 class Experience:
     """A played episode plus what the learner needs besides it.
 
-    ``episode``: the episode's number (1-based), which the schedule read; ``visited``: the
-    states whose visit counts the episode adds (the exploring start's state included),
-    in order; ``decisions``: how many actions the policy chose (a forced first action is
-    not one); ``epsilon_sum``: the sum of epsilon over those decisions.
+    ``episode``: the episode's number (1-based), which the schedule read; ``decisions``:
+    how many actions the policy chose (a forced first action is not one); ``epsilon_sum``:
+    the sum of epsilon over those decisions. Every state of ``played.states`` (the
+    exploring start's included) adds one to its visit count.
     """
 
     episode: int
     played: PlayedEpisode
-    visited: list[int]
     decisions: int
     epsilon_sum: float
 
@@ -67,6 +66,25 @@ class EpisodePlayer:
             self._start_indices = [encode(o) for o in self.start_states]
         return self._start_indices
 
+    def _per_state_acting(self, state_visits: np.ndarray, episode: int, greedy, next_uniform, start_state: int | None):
+        """A chooser whose epsilon follows each state's visits, counting this episode's own, and the list of its epsilons.
+
+        A function of its own, not a closure inside :meth:`play`: the variables a closure
+        captures cost every call of the function that holds them, per-state schedule or not.
+        """
+        behaviour_epsilon, schedule, n_actions = self.variant.behaviour_epsilon, self.schedule, self.n_actions
+        epsilons: list[float] = []
+        added: dict[int, int] = {} if start_state is None else {start_state: 1}  # this episode's visits so far
+
+        def choose(s: int) -> tuple[int, float]:
+            seen = added.get(s, 0)
+            epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s]) + seen))
+            added[s] = seen + 1
+            epsilons.append(epsilon)
+            return epsilon_greedy_choice(greedy[s], n_actions, epsilon, next_uniform())
+
+        return choose, epsilons
+
     def play(self, q: np.ndarray, state_visits: np.ndarray, episode: int, acting: UniformDraws, starts: UniformDraws, greedy: list[int] | None = None) -> Experience:
         """Episode number ``episode``, acting on ``q`` and ``state_visits`` as they are (neither is changed).
 
@@ -84,21 +102,12 @@ class EpisodePlayer:
         start_observation = first_action = None
         start_state = None
         if variant.needs_start_control:
-            index, first_action = start_pair(starts.next(), len(self.start_states), n_actions)
+            index, first_action = start_pair(starts.draw(), len(self.start_states), n_actions)
             start_observation = self.start_states[index]
-            start_state = self.start_indices()[index]
+            start_state = (self._start_indices or self.start_indices())[index]
 
         if self.per_state:
-            behaviour_epsilon = variant.behaviour_epsilon
-            epsilons: list[float] = []
-            added: dict[int, int] = {} if start_state is None else {start_state: 1}  # this episode's visits so far
-
-            def choose(s: int) -> tuple[int, float]:
-                seen = added.get(s, 0)
-                epsilon = behaviour_epsilon(schedule(episode, int(state_visits[s]) + seen))
-                added[s] = seen + 1
-                epsilons.append(epsilon)
-                return epsilon_greedy_choice(greedy[s], n_actions, epsilon, next_uniform())
+            choose, epsilons = self._per_state_acting(state_visits, episode, greedy, next_uniform, start_state)
         else:  # one epsilon for the whole episode (0 for a variant that acts greedily)
             epsilon = 0.0 if self._greedy_only else variant.behaviour_epsilon(schedule(episode, 0))
             choose = self._acting
@@ -116,4 +125,4 @@ class EpisodePlayer:
         elif epsilon:
             for _ in range(decisions):  # the same running sum as a per-decision schedule and the kernel
                 epsilon_sum += epsilon
-        return Experience(episode, played, played.states, decisions, epsilon_sum)  # positional: once per episode
+        return Experience(episode, played, decisions, epsilon_sum)  # positional: once per episode
