@@ -213,13 +213,6 @@ class Trainer:
         played = experience.played
         states = played.states
         length = len(states)
-        update = variant
-        long_update = self.long_episode_update
-        if long_update is not None and length >= COMPILED_FROM:
-            if long_update.ready or long_update.load_if_it_pays((self.settings.episodes - episode) * length):
-                update = long_update
-            else:
-                self.long_episode_update = None  # decided once: too few steps left to repay loading numba
         counted = False  # whether the episode's states are in the visit counts yet
         tail = 0.0
         if played.truncated and self.settings.truncation != "as_terminal":
@@ -228,16 +221,27 @@ class Trainer:
             tail = tail_value(self.settings.truncation, truncated=True, bootstrap_value=partial(self._bootstrap_value, played.final_state, episode))  # no closure: its cells cost every call
         used = 0
         if tail is not None:
-            if update is variant:
+            compiled = self._compiled_update_for(length, episode)
+            if compiled is None:
                 used = variant.update_lists(values, states, played.actions, played.rewards, played.probabilities, tail)
             else:  # the compiled update also counts the visits, in a microsecond less than a Python loop
-                used = update.update_lists(values, states, played.actions, played.rewards, played.probabilities, tail, count_visits=not counted)
+                used = compiled.update_lists(values, states, played.actions, played.rewards, played.probabilities, tail, count_visits=not counted)
                 counted = True
         if not counted:
             self._count_visits(states)
         state.capped_episodes += played.capped
         decisions = experience.decisions
         state.window.add(played.total_reward, length, experience.epsilon_sum / decisions if decisions else 0.0, played.truncated, played.capped, used)
+
+    def _compiled_update_for(self, length: int, episode: int) -> CompiledUpdate | None:
+        """The compiled update for an episode of ``length`` steps, or None: the variant's Python loop learns from it."""
+        compiled = self.long_episode_update
+        if compiled is None or length < COMPILED_FROM:
+            return None
+        if compiled.ready or compiled.load_if_it_pays((self.settings.episodes - episode) * length):
+            return compiled
+        self.long_episode_update = None  # decided once: too few steps left to repay loading numba
+        return None
 
     def _bootstrap_value(self, final: int, episode: int) -> float:
         """The value of the state a truncated episode reached, under the policy the variant learns."""

@@ -3,8 +3,8 @@
 The variants' Python loops (:mod:`qtally.control.variants`) cost about half a microsecond
 per step; :func:`qtally.engine.kernels.update_episode`, the update the compiled engine
 runs, costs a couple of microseconds per call (handing the lists over) and little per
-step, and counts the episode's state visits on the way. The trainer takes it for episodes of at least :data:`COMPILED_FROM` steps and the
-Python loop for shorter ones. Both do the same sums in the same order, so the choice
+step, and counts the episode's state visits on the way. The trainer takes it for
+episodes of at least :data:`COMPILED_FROM` steps and the Python loop for shorter ones. Both do the same sums in the same order, so the choice
 never changes a float of the Q table (the tests hold them equal).
 
 Loading numba and the kernels costs about 1.5 s in a process that has not loaded them,
