@@ -28,7 +28,7 @@ import numpy as np
 
 from .control.action_values import ActionValues
 from .control.streams import evaluation_base, evaluation_seeds
-from .control.trainer_state import LogWindow, TrainerState
+from .control.trainer_state import LogWindow, TrainerState, window_metric_columns
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
 from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, compiled_beside_workers, make_collector, stream_places
 from .engine.compiled_update import COMPILED_FROM, CompiledUpdate
@@ -38,10 +38,10 @@ from .envs.factory import TabularEnvironment, make_environment
 from .evaluate.rollouts import greedy_rollout_returns, summarise_returns
 from .policy.artifact import PolicyArtifact
 from .policy.table_policy import Fallback, greedy_actions
-from .tracking.sink import NullRecorder, Recorder
+from .tracking.sink import NullRecorder, Recorder, log_metric_columns
 
 if TYPE_CHECKING:
-    from .engine.compiled import ClosedWindow
+    from .engine.compiled import ClosedWindows
 
 __all__ = ["TrainingSettings", "TrainingOutcome", "Trainer", "train", "TRUNCATION_CHOICES", "ProgressSink"]
 
@@ -170,6 +170,19 @@ class Trainer:
             self.recorder.log_metrics(self._collector.rates.metrics(), episode)
         if self.progress is not None:
             self.progress.update(episode, metrics)
+
+    def _log_closed_windows(self, closed: ClosedWindows) -> None:
+        """The windows the compiled engine closed inside a span, logged column by column (the same metrics as :meth:`_log_window` one at a time)."""
+        if not closed.episodes:
+            return
+        columns = window_metric_columns(closed.sums)
+        columns["coverage_sa"] = closed.coverage.tolist()
+        steps, history = closed.episodes, self.state.history
+        log_metric_columns(self.recorder, steps, columns)
+        for name, values in columns.items():
+            history.setdefault(name, []).extend(zip(steps, values))
+        if self.progress is not None:
+            self.progress.update(steps[-1], {name: values[-1] for name, values in columns.items()})
 
     def _log(self, metrics: Mapping[str, float], step: int) -> None:
         self.recorder.log_metrics(metrics, step)
@@ -313,11 +326,11 @@ class Trainer:
                 boundary = min(boundary, (episode // every + 1) * every)
         return boundary
 
-    def _play_until(self, episode: int) -> list[ClosedWindow]:
+    def _play_until(self, episode: int) -> ClosedWindows | None:
         """Play and learn every episode up to ``episode``, through the engine this trainer chose.
 
         Returns the logging windows closed before ``episode`` (only the compiled engine
-        closes any; on the gym path every span ends on a logging boundary).
+        closes any, None elsewhere: on the gym path every span ends on a logging boundary).
         """
         if self._collector is not None:  # batches on one snapshot each, learned from in episode order
             batch, values = self.settings.collect.batch_size, self.state.values
@@ -325,7 +338,7 @@ class Trainer:
                 count = min(batch, episode - self.state.episode)
                 for experience in self._collector.collect(values.q, values.state_visits, self.state.episode + 1, count):
                     self.learn(experience)
-            return []
+            return None
         if self.engine == "compiled":
             return self.episodes.learn(self.state, self.variant, self.schedule, self.settings.truncation, episode - self.state.episode, self.settings.log_every)
         # play_and_learn, with the lookups hoisted out of the loop: on short episodes (a
@@ -335,7 +348,7 @@ class Trainer:
         q, state_visits, greedy = values.q, values.state_visits, values.greedy
         while state.episode < episode and not self.stop_requested:
             learn(play(q, state_visits, state.episode + 1, acting, starts, greedy))
-        return []
+        return None
 
     def save_state(self, path) -> Path:
         """Write the whole state between two episodes, the environment's generator included."""
@@ -356,8 +369,9 @@ class Trainer:
         try:
             self.start_workers()
             while state.episode < stop:
-                for closed in self._play_until(self._next_boundary(stop)):  # windows the compiled engine closed on the way
-                    self._log_window(closed.window, closed.coverage, closed.episode)
+                closed = self._play_until(self._next_boundary(stop))
+                if closed is not None:  # windows the compiled engine closed on the way
+                    self._log_closed_windows(closed)
                 episode = state.episode
                 last = episode == settings.episodes
                 if episode % settings.log_every == 0 or last:

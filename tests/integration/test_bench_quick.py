@@ -28,9 +28,10 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
             assert low <= row[key] <= high, (row, key)
     for row in data["compiled"]:
         assert row["over_gym"] > 1.0, row  # compiled code slower than Python would be a broken engine, not noise
-        assert 0 < row["of_reference"] and math.isfinite(row["of_reference"])
-        low, high = row["of_reference_range"]
-        assert low <= row["of_reference"] <= high, row
+        for key in ("of_reference", "of_stepping"):
+            assert 0 < row[key] and math.isfinite(row[key]), (row, key)
+            low, high = row[f"{key}_range"]
+            assert low <= row[key] <= high, (row, key)
     assert all(v > 0 for v in data["memory"].values()) and len(data["memory"]) == 2
     assert data["compile"]["warm_seconds"] > 0 and math.isfinite(data["recording"]["overhead"])
     low, high = data["recording"]["in_run_overhead_range"]

@@ -22,3 +22,44 @@ def test_windows_evaluations_and_snapshots_reach_the_sink():
     assert recorder.series("epsilon")[0][1] == pytest.approx(0.9505, abs=1e-9)
     assert recorder.series("coverage_sa")[-1][1] == pytest.approx(outcome.values.coverage())
     assert outcome.history["eval_return_mean"] == recorder.series("eval_return_mean")
+
+
+def test_windows_closed_column_by_column_give_the_floats_of_one_window_at_a_time():
+    # The compiled engine logs its closed windows as columns (window_metric_columns); the
+    # gym path one LogWindow at a time. Breakage caught: a metric divided by the wrong sum,
+    # an empty window (0 episodes, 0 steps) dividing by zero, or columns in another order.
+    import numpy as np
+
+    from qtally.control.trainer_state import LogWindow, window_metric_columns
+
+    rng = np.random.default_rng(4)
+    windows = [LogWindow(0, 0.0, 0, 0.0, 0, 0, 0)]
+    for _ in range(50):
+        episodes = int(rng.integers(1, 300))
+        length = int(rng.integers(0, 5000))
+        windows.append(LogWindow(episodes, float(rng.normal(0, 50)), length, float(rng.uniform(0, episodes)), int(rng.integers(0, episodes + 1)),
+                                 int(rng.integers(0, episodes + 1)), int(rng.integers(0, length + 1))))
+    sums = np.array([[w.episodes, w.return_sum, w.length_sum, w.epsilon_sum, w.truncated, w.capped, w.steps_used] for w in windows], dtype=np.float64)
+    columns = window_metric_columns(sums)
+    expected = [w.metrics() for w in windows]
+    assert list(columns) == list(expected[0])
+    assert [dict(zip(columns, row)) for row in zip(*columns.values())] == expected
+
+
+def test_the_compiled_engine_sends_the_sink_what_the_gym_path_sends():
+    # Same seed, same model: the compiled engine closes its windows in the kernel and logs
+    # them column by column. Breakage caught: a window logged at the wrong episode, dropped,
+    # sent twice, or its metrics keyed differently from the gym path's.
+    pytest.importorskip("numba")
+    from qtally.control.schedules import Constant
+
+    def run(engine):
+        recorder = MemoryRecorder()
+        environment = make_environment(EnvironmentSpec(id="FrozenLake-v1", kwargs={"map_name": "8x8"}))
+        settings = TrainingSettings(episodes=2500, seed=3, log_every=100, eval_every=1000, eval_episodes=5, engine=engine)
+        train(environment, make_variant("on_policy", 0.95, True, None), Constant(0.2), settings, recorder=recorder)
+        return recorder.metrics
+
+    gym, compiled = run("gym"), run("compiled")
+    assert [step for step, _ in compiled] == [step for step, _ in gym]
+    assert compiled == gym

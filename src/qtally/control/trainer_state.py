@@ -27,7 +27,7 @@ import numpy as np
 from .action_values import ActionValues
 from .streams import RandomStreams
 
-__all__ = ["LogWindow", "TrainerState", "TrainerStateError", "STATE_FORMAT", "STATE_VERSION"]
+__all__ = ["LogWindow", "window_metric_columns", "TrainerState", "TrainerStateError", "STATE_FORMAT", "STATE_VERSION"]
 
 STATE_FORMAT = "qtally-trainer-state"
 STATE_VERSION = 1
@@ -69,6 +69,23 @@ class LogWindow:
             "step_capped_fraction": self.capped / n,
             "update_steps_fraction": self.steps_used / max(self.length_sum, 1),
         }
+
+
+def window_metric_columns(sums: np.ndarray) -> dict[str, list[float]]:
+    """:meth:`LogWindow.metrics` of many windows at once, the same floats: ``sums`` holds a window per row, its fields in :class:`LogWindow`'s order.
+
+    The compiled engine closes hundreds of windows per call; one at a time their Python cost
+    about a tenth of a run of short episodes.
+    """
+    episodes = np.maximum(sums[:, 0], 1.0)
+    return {
+        "return_mean": (sums[:, 1] / episodes).tolist(),
+        "episode_length_mean": (sums[:, 2] / episodes).tolist(),
+        "epsilon": (sums[:, 3] / episodes).tolist(),
+        "truncated_fraction": (sums[:, 4] / episodes).tolist(),
+        "step_capped_fraction": (sums[:, 5] / episodes).tolist(),
+        "update_steps_fraction": (sums[:, 6] / np.maximum(sums[:, 2], 1.0)).tolist(),
+    }
 
 
 def _checksum(arrays: dict[str, np.ndarray]) -> str:

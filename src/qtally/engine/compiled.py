@@ -26,7 +26,7 @@ from ..control.streams import UniformDraws
 from ..control.trainer_state import LogWindow, TrainerState
 from ..envs.outcomes import OutcomeTable
 
-__all__ = ["ENGINE_CHOICES", "ClosedWindow", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "step_size_code", "variant_code", "time_limit_of"]
+__all__ = ["ENGINE_CHOICES", "ClosedWindows", "CompiledEpisodes", "EngineUnavailable", "schedule_code", "step_size_code", "variant_code", "time_limit_of"]
 
 ENGINE_CHOICES = ("auto", "gym", "compiled")
 _WINDOW = 1 << 16  # uniforms per block of each stream the kernel reads (512 KiB): few refills, and a fixed size whatever the run length
@@ -80,12 +80,16 @@ def time_limit_of(env) -> int:
     return 0
 
 
-class ClosedWindow(NamedTuple):
-    """A logging window the kernel closed inside a span: the episode it ends on, its sums, the share of pairs covered then."""
+class ClosedWindows(NamedTuple):
+    """The logging windows the kernel closed inside a span, as columns: the episode each ends on, their sums, the share of pairs covered then.
 
-    episode: int
-    window: LogWindow
-    coverage: float
+    ``sums`` holds a window per row, its fields in :class:`LogWindow`'s order
+    (:func:`qtally.control.trainer_state.window_metric_columns` turns them into metrics).
+    """
+
+    episodes: list[int]
+    sums: np.ndarray
+    coverage: np.ndarray
 
 
 def _window_array(window: LogWindow) -> np.ndarray:
@@ -144,7 +148,7 @@ class CompiledEpisodes:
         self._pending_seed = None
 
     # ------------------------------------------------------------ learning
-    def learn(self, state: TrainerState, variant, schedule, truncation: str, n_episodes: int, log_every: int = 0) -> list[ClosedWindow]:
+    def learn(self, state: TrainerState, variant, schedule, truncation: str, n_episodes: int, log_every: int = 0) -> ClosedWindows:
         """Play and learn ``n_episodes`` episodes into ``state``; return the logging windows closed on the way.
 
         A window closes after each episode numbered a multiple of ``log_every`` (0: none)
@@ -200,7 +204,8 @@ class CompiledEpisodes:
         values.forget_greedy()  # the kernel wrote q directly
         rows = closed[: counters[0]]
         first_closed = (episode_before // log_every + 1) * log_every if log_every else 0
-        windows = [ClosedWindow(first_closed + i * log_every, _window_from(row[:7]), float(row[7]) / values.visits.size) for i, row in enumerate(rows)]
+        ends = [first_closed + i * log_every for i in range(len(rows))]
+        windows = ClosedWindows(ends, rows[:, :7], rows[:, 7] / values.visits.size)
         state.capped_episodes += int(rows[:, 5].sum()) + int(window[5]) - state.window.capped
         state.window = _window_from(window)
         return windows

@@ -24,6 +24,7 @@ from numba import njit
 EXPLORING_STARTS, ON_POLICY, OFF_POLICY = 0, 1, 2
 CONSTANT, LINEAR, EXPONENTIAL, GLIE_EPISODE, GLIE_VISITS = 0, 1, 2, 3, 4
 AS_TERMINAL, BOOTSTRAP, DISCARD = 0, 1, 2
+_SCAN_UP_TO = 8  # first-visit episodes up to this long look back for a pair's earlier visit rather than fill the scratch table
 
 
 @njit(cache=True)
@@ -83,7 +84,8 @@ def update_episode(q, visits, weights, greedy, state_visits, states, actions, re
     if state_visits is not None:
         for t in range(length):
             state_visits[states[t]] += 1
-    if first_visit:
+    scratch = first_visit and length > _SCAN_UP_TO  # short episodes find a pair's first visit by looking back instead
+    if scratch:
         for t in range(length):
             key = states[t] * n_actions + actions[t]
             if first_time[key] < 0:
@@ -95,7 +97,14 @@ def update_episode(q, visits, weights, greedy, state_visits, states, actions, re
         s = states[t]
         a = actions[t]
         g = gamma * g + rewards[t]
-        counted = (not first_visit) or first_time[s * n_actions + a] == t
+        counted = True
+        if scratch:
+            counted = first_time[s * n_actions + a] == t
+        elif first_visit:
+            for j in range(t):
+                if states[j] == s and actions[j] == a:
+                    counted = False
+                    break
         if variant == OFF_POLICY:
             if counted:
                 weights[s, a] += w
@@ -121,7 +130,7 @@ def update_episode(q, visits, weights, greedy, state_visits, states, actions, re
                 greedy[s] = _greedy(q, s)
     if variant != OFF_POLICY:
         used = length
-    if first_visit:
+    if scratch:
         for t in range(length):
             first_time[states[t] * n_actions + actions[t]] = -1
     return used
@@ -156,6 +165,7 @@ def learn_episodes(
     acting_used = 0
     start_used = 0
     done = 0
+    next_close = (episode_before // log_every + 1) * log_every if log_every > 0 else -1
     while done < n_episodes:
         if env_u.shape[0] - env_used < max_length + 1 or acting_u.shape[0] - acting_used < max_length:
             break
@@ -170,8 +180,9 @@ def learn_episodes(
             pairs = es_starts.shape[0] * n_actions
             index = min(int(start_u[start_used] * pairs), pairs - 1)
             start_used += 1
-            state = es_starts[index // n_actions]
-            forced = index % n_actions
+            start = index // n_actions
+            state = es_starts[start]
+            forced = index - start * n_actions
             state_visits[state] += 1
         else:
             state = start_states[_pick(start_probabilities, 0, start_probabilities.shape[0], u_reset)]
@@ -253,7 +264,10 @@ def learn_episodes(
         window[5] += capped
         window[6] += used
         done += 1
-        if log_every > 0 and episode % log_every == 0 and episode != span_end:
+        if episode == next_close:  # a multiple of log_every, counted rather than divided for
+            next_close += log_every
+            if episode == span_end:
+                continue
             filled = counters[0]
             for i in range(7):
                 closed[filled, i] = window[i]
@@ -264,27 +278,59 @@ def learn_episodes(
 
 
 @njit(cache=True)
-def reference_kernel(offsets, next_states, probabilities, terminated, start_states, start_probabilities, q, n_steps, seed):
-    """The benchmark's limit: epsilon-greedy episodes from a table, nothing recorded, no updates.
+def reference_kernel(offsets, next_states, probabilities, rewards, terminated, start_states, start_probabilities, es_starts, epsilon, gamma, q, n_steps, seed, learn):
+    """The benchmark's limit: Monte Carlo control in the fewest operations, nothing recorded.
 
-    Uniforms come from numba's own generator, so this is the least work a step can be.
+    Episodes start as the variant's do: from the start distribution, or, where ``es_starts``
+    is not empty, from a uniformly drawn exploring start (state and first action). Each is
+    played epsilon-greedily on ``q`` and, with ``learn``, learned from by every-visit sample
+    averages, backwards; without it, nothing is learned (table stepping alone). Uniforms
+    come from numba's own generator; no streams, first-visit rule, schedule, truncation,
+    importance weights or logging.
     """
     np.random.seed(seed)
     n_actions = q.shape[1]
+    pairs = es_starts.shape[0] * n_actions
+    counts = np.zeros(q.shape)
+    states = np.empty(200, np.int64)
+    actions = np.empty(200, np.int64)
+    gains = np.empty(200)
     steps = 0
     episodes = 0
     while steps < n_steps:
-        state = start_states[_pick(start_probabilities, 0, start_probabilities.shape[0], np.random.random())]
+        forced = -1
+        if pairs > 0:
+            index = np.random.randint(pairs)
+            state = es_starts[index // n_actions]
+            forced = index % n_actions
+        else:
+            state = start_states[_pick(start_probabilities, 0, start_probabilities.shape[0], np.random.random())]
         episodes += 1
-        for _ in range(200):
-            if np.random.random() < 0.1:
+        length = 0
+        while length < 200:
+            if forced >= 0:
+                action = forced
+                forced = -1
+            elif np.random.random() < epsilon:
                 action = np.random.randint(n_actions)
             else:
                 action = _greedy(q, state)
             row = state * n_actions + action
             k = _pick(probabilities, offsets[row], offsets[row + 1], np.random.random())
-            steps += 1
+            states[length] = state
+            actions[length] = action
+            gains[length] = rewards[k]
+            length += 1
             state = next_states[k]
             if terminated[k]:
                 break
+        steps += length
+        if learn:
+            g = 0.0
+            for t in range(length - 1, -1, -1):
+                g = gamma * g + gains[t]
+                s = states[t]
+                a = actions[t]
+                counts[s, a] += 1.0
+                q[s, a] += (g - q[s, a]) / counts[s, a]
     return steps, episodes

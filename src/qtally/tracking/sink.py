@@ -8,9 +8,9 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Mapping, Protocol
+from typing import Mapping, Protocol, Sequence
 
-__all__ = ["Recorder", "NullRecorder", "MemoryRecorder"]
+__all__ = ["Recorder", "NullRecorder", "MemoryRecorder", "log_metric_columns"]
 
 
 class Recorder(Protocol):
@@ -24,8 +24,25 @@ class Recorder(Protocol):
         """Send whatever is queued."""
 
 
+def log_metric_columns(recorder: Recorder, steps: Sequence[int], columns: Mapping[str, Sequence[float]]) -> None:
+    """Metrics of many steps at once (a list of values per name, one per step), as ``log_metrics`` step by step would queue them.
+
+    A recorder with a ``log_metric_columns`` method of its own takes them whole.
+    """
+    own = getattr(recorder, "log_metric_columns", None)
+    if own is not None:
+        own(steps, columns)
+        return
+    names = list(columns)
+    for step, row in zip(steps, zip(*columns.values())):
+        recorder.log_metrics(dict(zip(names, row)), step)
+
+
 class NullRecorder:
     def log_metrics(self, metrics: Mapping[str, float], step: int) -> None:
+        pass
+
+    def log_metric_columns(self, steps: Sequence[int], columns: Mapping[str, Sequence[float]]) -> None:
         pass
 
     def log_file(self, local_path: Path, artifact_dir: str | None = None) -> None:
