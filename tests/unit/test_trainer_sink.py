@@ -26,8 +26,10 @@ def test_windows_evaluations_and_snapshots_reach_the_sink():
 
 def test_windows_closed_column_by_column_give_the_floats_of_one_window_at_a_time():
     # The compiled engine logs its closed windows as columns (window_metric_columns); the
-    # gym path one LogWindow at a time. Breakage caught: a metric divided by the wrong sum,
-    # an empty window (0 episodes, 0 steps) dividing by zero, or columns in another order.
+    # gym path one LogWindow at a time, through LogWindow.sums (the formulas themselves are
+    # held by test_the_window_sums_and_averages_what_it_was_given). Breakage caught: sums()
+    # listing the fields in another order than the kernel's rows, an empty window (0
+    # episodes, 0 steps) dividing by zero, or the columns' names in another order.
     import numpy as np
 
     from qtally.control.trainer_state import LogWindow, window_metric_columns

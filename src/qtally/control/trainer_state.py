@@ -59,23 +59,21 @@ class LogWindow:
         self.capped += int(capped)
         self.steps_used += steps_used
 
+    def sums(self) -> np.ndarray:
+        """The fields as one float row, in field order (the compiled engine's form of a window)."""
+        return np.array([self.episodes, self.return_sum, self.length_sum, self.epsilon_sum, self.truncated, self.capped, self.steps_used], dtype=np.float64)
+
     def metrics(self) -> dict[str, float]:
-        n = max(self.episodes, 1)
-        return {
-            "return_mean": self.return_sum / n,
-            "episode_length_mean": self.length_sum / n,
-            "epsilon": self.epsilon_sum / n,
-            "truncated_fraction": self.truncated / n,
-            "step_capped_fraction": self.capped / n,
-            "update_steps_fraction": self.steps_used / max(self.length_sum, 1),
-        }
+        """The window's metrics, as :func:`window_metric_columns` computes them for many."""
+        return {name: values[0] for name, values in window_metric_columns(self.sums()[None, :]).items()}
 
 
 def window_metric_columns(sums: np.ndarray) -> dict[str, list[float]]:
-    """:meth:`LogWindow.metrics` of many windows at once, the same floats: ``sums`` holds a window per row, its fields in :class:`LogWindow`'s order.
+    """The metrics of logging windows, a list per name: ``sums`` holds a window per row, in :class:`LogWindow`'s field order.
 
-    The compiled engine closes hundreds of windows per call; one at a time their Python cost
-    about a tenth of a run of short episodes.
+    The one definition: :meth:`LogWindow.metrics` is the case of one row. The compiled engine
+    closes hundreds of windows per call; one at a time their Python cost about a tenth of
+    a run of short episodes.
     """
     episodes = np.maximum(sums[:, 0], 1.0)
     return {

@@ -92,10 +92,6 @@ class ClosedWindows(NamedTuple):
     coverage: np.ndarray
 
 
-def _window_array(window: LogWindow) -> np.ndarray:
-    return np.array([window.episodes, window.return_sum, window.length_sum, window.epsilon_sum, window.truncated, window.capped, window.steps_used], dtype=np.float64)
-
-
 def _window_from(values: np.ndarray) -> LogWindow:
     episodes, return_sum, length_sum, epsilon_sum, truncated, capped, used = values.tolist()
     return LogWindow(int(episodes), return_sum, int(length_sum), epsilon_sum, int(truncated), int(capped), int(used))
@@ -165,7 +161,7 @@ class CompiledEpisodes:
             raise EngineUnavailable("exploring starts need start states; this environment lists none")
         step_size = step_size_code(variant)
         values, streams, table = state.values, state.streams, self.table
-        window = _window_array(state.window)
+        window = state.window.sums()
         episode_before = state.episode
         span_end = episode_before + n_episodes
         log_every = max(int(log_every), 0)
