@@ -28,7 +28,7 @@ import numpy as np
 
 from .control.action_values import ActionValues
 from .control.streams import evaluation_base, evaluation_seeds
-from .control.trainer_state import LogWindow, TrainerState, window_metric_columns
+from .control.trainer_state import LogWindow, MetricSeries, TrainerState, record_metrics, window_metric_columns
 from .control.truncation import TRUNCATION_CHOICES, check_truncation, resolve_step_cap, tail_value
 from .engine.collection import CollectionFailed, CollectSettings, WorkerBlueprint, compiled_beside_workers, make_collector, stream_places
 from .engine.compiled_update import COMPILED_FROM, CompiledUpdate
@@ -88,7 +88,7 @@ class TrainingSettings:
 class TrainingOutcome:
     values: ActionValues
     artifact: PolicyArtifact
-    history: dict[str, list[tuple[int, float]]] = field(default_factory=dict)
+    history: dict[str, MetricSeries] = field(default_factory=dict)  # each a sequence of (step, value) pairs
     final_evaluation: dict[str, float] = field(default_factory=dict)
     capped_episodes: int = 0
     step_cap: int = 0
@@ -177,17 +177,15 @@ class Trainer:
             return
         columns = window_metric_columns(closed.sums)
         columns["coverage_sa"] = closed.coverage.tolist()
-        steps, history = closed.episodes, self.state.history
+        steps = closed.episodes
         log_metric_columns(self.recorder, steps, columns)
-        for name, values in columns.items():
-            history.setdefault(name, []).extend(zip(steps, values))
+        record_metrics(self.state.history, steps, columns)
         if self.progress is not None:
             self.progress.update(steps[-1], {name: values[-1] for name, values in columns.items()})
 
     def _log(self, metrics: Mapping[str, float], step: int) -> None:
         self.recorder.log_metrics(metrics, step)
-        for name, value in metrics.items():
-            self.state.history.setdefault(name, []).append((step, float(value)))
+        record_metrics(self.state.history, (step,), {name: (float(value),) for name, value in metrics.items()})
 
     def evaluate(self) -> dict[str, float]:
         """Greedy rollouts on the private evaluation environment and fixed seeds, plus every probe."""

@@ -9,7 +9,7 @@ import os
 import numpy as np
 import pytest
 
-from qtally.control.trainer_state import STATE_FORMAT, LogWindow, TrainerState, TrainerStateError
+from qtally.control.trainer_state import STATE_FORMAT, LogWindow, MetricSeries, TrainerState, TrainerStateError, record_metrics
 
 
 def test_the_window_sums_and_averages_what_it_was_given():
@@ -32,6 +32,33 @@ def test_the_window_sums_and_averages_what_it_was_given():
     assert metrics["epsilon"] == pytest.approx(0.3)
     assert metrics["truncated_fraction"] == 0.5 and metrics["step_capped_fraction"] == 0.5
     assert metrics["update_steps_fraction"] == pytest.approx(3 / 6)
+
+
+def test_a_metric_series_reads_as_the_list_of_pairs_it_holds():
+    # Breakages caught: steps and values paired out of order or misaligned after a column
+    # extend, a slice or index that returns one column, equality that ignores values or
+    # length, columns of unequal length taken silently.
+    series = MetricSeries([(100, 0.5)])
+    series.extend_columns([200, 300], [0.25, -1.0])
+    series.append((400, 2.0))
+    pairs = [(100, 0.5), (200, 0.25), (300, -1.0), (400, 2.0)]
+    assert list(series) == pairs and len(series) == 4
+    assert series[1] == (200, 0.25) and series[-1] == (400, 2.0) and series[1:3] == pairs[1:3]
+    assert series == pairs and series == MetricSeries(pairs) and pairs == series
+    assert series != pairs[:3] and series != [*pairs[:3], (400, 2.5)] and series != MetricSeries(pairs[::-1])
+    assert [value for _, value in series] == [0.5, 0.25, -1.0, 2.0]
+    with pytest.raises(ValueError, match="2 steps for 1 values"):
+        series.extend_columns([500, 600], [1.0])
+
+
+def test_metrics_recorded_as_columns_land_under_their_names_in_order():
+    # Breakages caught: a name's values sent to another name, a plain list already in the
+    # history replaced instead of extended, steps shifted by a window.
+    history = {"return_mean": [(10, -1.5)]}
+    record_metrics(history, [20, 30], {"return_mean": [1.0, 2.0], "epsilon": [0.5, 0.25]})
+    record_metrics(history, (40,), {"epsilon": (0.125,)})
+    assert history == {"return_mean": [(10, -1.5), (20, 1.0), (30, 2.0)], "epsilon": [(20, 0.5), (30, 0.25), (40, 0.125)]}
+    assert all(isinstance(series, MetricSeries) for series in history.values())
 
 
 def _busy_state() -> TrainerState:

@@ -20,14 +20,14 @@ import os
 import tempfile
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 
 from .action_values import ActionValues
 from .streams import RandomStreams
 
-__all__ = ["LogWindow", "window_metric_columns", "TrainerState", "TrainerStateError", "STATE_FORMAT", "STATE_VERSION"]
+__all__ = ["LogWindow", "MetricSeries", "record_metrics", "window_metric_columns", "TrainerState", "TrainerStateError", "STATE_FORMAT", "STATE_VERSION"]
 
 STATE_FORMAT = "qtally-trainer-state"
 STATE_VERSION = 1
@@ -86,6 +86,71 @@ def window_metric_columns(sums: np.ndarray) -> dict[str, list[float]]:
     }
 
 
+class MetricSeries(Sequence):
+    """One metric's history: a sequence of ``(step, value)`` pairs, kept as two columns.
+
+    It reads like the list of pairs it stands for (iteration, indexing, ``len``, equality
+    with such a list). Held as two lists, a run's history costs no tuple per value: after a
+    few million short episodes a list of pairs held a quarter of a million of them, which
+    slowed every garbage collection for the rest of the run.
+    """
+
+    __slots__ = ("steps", "values")
+
+    def __init__(self, pairs: Iterable[tuple[int, float]] = ()):
+        self.steps: list[int] = []
+        self.values: list[float] = []
+        self.extend(pairs)
+
+    def append(self, pair: tuple[int, float]) -> None:
+        step, value = pair
+        self.steps.append(step)
+        self.values.append(value)
+
+    def extend(self, pairs: Iterable[tuple[int, float]]) -> None:
+        for pair in pairs:
+            self.append(pair)
+
+    def extend_columns(self, steps: Sequence[int], values: Sequence[float]) -> None:
+        """Add many pairs given as two columns of equal length."""
+        if len(steps) != len(values):
+            raise ValueError(f"{len(steps)} steps for {len(values)} values")
+        self.steps.extend(steps)
+        self.values.extend(values)
+
+    def __len__(self) -> int:
+        return len(self.steps)
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return list(zip(self.steps[index], self.values[index]))
+        return self.steps[index], self.values[index]
+
+    def __iter__(self) -> Iterator[tuple[int, float]]:
+        return zip(self.steps, self.values)
+
+    def __eq__(self, other) -> bool:
+        if isinstance(other, MetricSeries):
+            return self.steps == other.steps and self.values == other.values
+        if isinstance(other, (list, tuple)):
+            return len(other) == len(self) and all(tuple(pair) == mine for pair, mine in zip(other, self))
+        return NotImplemented
+
+    __hash__ = None  # mutable
+
+    def __repr__(self) -> str:
+        return f"MetricSeries({list(self)!r})"
+
+
+def record_metrics(history: dict[str, Sequence[tuple[int, float]]], steps: Sequence[int], columns: Mapping[str, Sequence[float]]) -> None:
+    """Add metric values given as columns (a list per name, one value per step) to ``history``."""
+    for name, values in columns.items():
+        series = history.get(name)
+        if not isinstance(series, MetricSeries):  # absent, or a plain list of pairs set from outside
+            history[name] = series = MetricSeries(series or ())
+        series.extend_columns(steps, values)
+
+
 def _checksum(arrays: dict[str, np.ndarray]) -> str:
     digest = hashlib.sha256()
     for name in _ARRAYS:
@@ -101,7 +166,7 @@ class TrainerState:
     streams: RandomStreams
     episode: int = 0
     window: LogWindow = field(default_factory=LogWindow)
-    history: dict[str, list[tuple[int, float]]] = field(default_factory=dict)
+    history: dict[str, MetricSeries] = field(default_factory=dict)  # plain lists of pairs are taken too
     final_evaluation: dict[str, float] = field(default_factory=dict)
     environment_rng: dict[str, Any] | None = None
     capped_episodes: int = 0
@@ -169,7 +234,7 @@ class TrainerState:
                 streams=streams,
                 episode=int(metadata["episode"]),
                 window=LogWindow(**metadata["window"]),
-                history={key: [(int(step), float(value)) for step, value in series] for key, series in metadata["history"].items()},
+                history={key: MetricSeries((int(step), float(value)) for step, value in series) for key, series in metadata["history"].items()},
                 final_evaluation={key: float(value) for key, value in metadata["final_evaluation"].items()},
                 environment_rng=metadata["environment_rng"],
                 capped_episodes=int(metadata.get("capped_episodes", 0)),

@@ -171,21 +171,24 @@ class CompiledEpisodes:
         empty = np.zeros(0)
         done_total = 0
         first_call = not self._compiled_for
+        model = (table.offsets, table.next_states, table.probabilities, table.rewards, table.first_step_rewards, table.terminated,
+                 table.start_states, table.start_probabilities, self.exploring_starts)
+        rules = (bool(variant.first_visit), float(variant.gamma), step_size, kind, float(p0), float(p1), float(p2), truncation_code, self.time_limit, self.step_cap)
+        buffers = (*self._buffers, self._first_time)
         while done_total < n_episodes or first_call:
             env_u = self._draws.window(need, _WINDOW)
             acting_u = streams.acting.window(need, _WINDOW)
             start_u = streams.starts.window(1, _WINDOW) if code == k.EXPLORING_STARTS else empty
             started = time.perf_counter()
             done, env_used, acting_used, start_used = k.learn_episodes(
-                0 if first_call else n_episodes - done_total, state.episode,
-                table.offsets, table.next_states, table.probabilities, table.rewards, table.first_step_rewards, table.terminated,
-                table.start_states, table.start_probabilities, self.exploring_starts,
-                values.q, values.visits, values.cumulative_weights, values.state_visits,
-                env_u, acting_u, start_u,
-                code, bool(variant.first_visit), float(variant.gamma), step_size,
-                kind, float(p0), float(p1), float(p2),
-                truncation_code, self.time_limit, self.step_cap,
-                *self._buffers, self._first_time, window, log_every, span_end, closed, counters,
+                code,
+                (0 if first_call else n_episodes - done_total, state.episode),
+                model,
+                (values.q, values.visits, values.cumulative_weights, values.state_visits),
+                (env_u, acting_u, start_u),
+                rules,
+                buffers,
+                (window, log_every, span_end, closed, counters),
             )
             if first_call:  # a call with no episodes: what it took is compiling or loading the cached code
                 self.compile_seconds += time.perf_counter() - started

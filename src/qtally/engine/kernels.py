@@ -136,19 +136,16 @@ def update_episode(q, visits, weights, greedy, state_visits, states, actions, re
     return used
 
 
-@njit(cache=True)
-def learn_episodes(
-    n_episodes, episode_before,
-    offsets, next_states, probabilities, rewards, opening_rewards, terminated, start_states, start_probabilities, es_starts,
-    q, visits, weights, state_visits,
-    env_u, acting_u, start_u,
-    variant, first_visit, gamma, step_size,
-    schedule_kind, p0, p1, p2,
-    truncation, time_limit, step_cap,
-    buffer_states, buffer_actions, buffer_rewards, buffer_probabilities, first_time,
-    window, log_every, span_end, closed, counters,
-):
+@njit(cache=True, inline="always")  # inlined into each entry point below, where the variant is a constant
+def _learn_episodes(variant, counts, model, tables, draws, rules, buffers, log):
     """Play and learn up to ``n_episodes`` episodes; return (episodes done, env, acting, start uniforms read).
+
+    The arguments come in groups (tuples), unpacked first: ``counts`` (n_episodes,
+    episode_before); ``model``, the outcome table's arrays and the exploring starts;
+    ``tables`` (q, visits, weights, state_visits); ``draws``, the three streams' windows;
+    ``rules`` (first_visit, gamma, step_size, the schedule's kind and p0 to p2,
+    truncation, time_limit, step_cap); ``buffers``, one episode's steps and the
+    first-visit scratch; ``log`` (window, log_every, span_end, closed, counters).
 
     ``step_size`` < 0 means the sample average. ``time_limit`` 0 means none. ``window``
     holds the logging window's running sums (episodes, return, length, epsilon, truncated,
@@ -159,6 +156,13 @@ def learn_episodes(
     kept as visits go from 0 to 1) in column 7, and the sums start again from 0: one call
     covers many logging windows, and the Python around a call is paid once per span.
     """
+    n_episodes, episode_before = counts
+    offsets, next_states, probabilities, rewards, opening_rewards, terminated, start_states, start_probabilities, es_starts = model
+    q, visits, weights, state_visits = tables
+    env_u, acting_u, start_u = draws
+    first_visit, gamma, step_size, schedule_kind, p0, p1, p2, truncation, time_limit, step_cap = rules
+    buffer_states, buffer_actions, buffer_rewards, buffer_probabilities, first_time = buffers
+    window, log_every, span_end, closed, counters = log
     n_actions = q.shape[1]
     max_length = buffer_states.shape[0]
     env_used = 0
@@ -275,6 +279,35 @@ def learn_episodes(
             closed[filled, 7] = counters[1]
             counters[0] = filled + 1
     return done, env_used, acting_used, start_used
+
+# The entry points: one per variant, so that compiled code holds the variant as a constant
+# and drops the other variants' branches (measured on Blackjack, numba 0.68: exploring
+# starts a tenth faster, on-policy a few percent). Off-policy takes the variant at run
+# time: as a constant it made Blackjack's off-policy hands a tenth slower.
+
+
+@njit(cache=True)
+def learn_exploring_starts(counts, model, tables, draws, rules, buffers, log):
+    return _learn_episodes(EXPLORING_STARTS, counts, model, tables, draws, rules, buffers, log)
+
+
+@njit(cache=True)
+def learn_on_policy(counts, model, tables, draws, rules, buffers, log):
+    return _learn_episodes(ON_POLICY, counts, model, tables, draws, rules, buffers, log)
+
+
+@njit(cache=True)
+def learn_any_variant(variant, counts, model, tables, draws, rules, buffers, log):
+    return _learn_episodes(variant, counts, model, tables, draws, rules, buffers, log)
+
+
+def learn_episodes(variant, counts, model, tables, draws, rules, buffers, log):
+    """:func:`_learn_episodes` through the variant's entry point."""
+    if variant == EXPLORING_STARTS:
+        return learn_exploring_starts(counts, model, tables, draws, rules, buffers, log)
+    if variant == ON_POLICY:
+        return learn_on_policy(counts, model, tables, draws, rules, buffers, log)
+    return learn_any_variant(variant, counts, model, tables, draws, rules, buffers, log)
 
 
 @njit(cache=True)
