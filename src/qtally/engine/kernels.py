@@ -280,6 +280,7 @@ def _learn_episodes(variant, counts, model, tables, draws, rules, buffers, log):
             counters[0] = filled + 1
     return done, env_used, acting_used, start_used
 
+
 # The entry points: one per variant, so that compiled code holds the variant as a constant
 # and drops the other variants' branches (measured on Blackjack, numba 0.68: exploring
 # starts a tenth faster, on-policy a few percent). Off-policy takes the variant at run
