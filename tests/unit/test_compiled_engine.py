@@ -142,3 +142,24 @@ def test_the_trainer_calls_the_kernel_once_per_span_not_once_per_logging_window(
     outcome = Trainer(environment, make_variant("on_policy", 0.95, True, None), Constant(0.2), settings).run()
     assert calls == [1000, 1000, 1000]
     assert [step for step, _ in outcome.history["coverage_sa"]] == list(range(100, 3001, 100))
+
+
+def test_a_kernel_call_that_plays_nothing_stops_the_run_instead_of_repeating(monkeypatch):
+    # Breakage caught: the span loop calling the kernel again and again after a call that
+    # played no episode (a kernel given the wrong variant's entry point did that: it waited
+    # for start uniforms that were never handed over), so a run hung instead of failing.
+    from qtally.engine import kernels
+
+    real, calls = kernels.learn_episodes, []
+
+    def stalled(variant, counts, *rest):
+        calls.append(counts[0])
+        assert len(calls) < 5, "the kernel was called again after it played nothing"
+        if counts[0] == 0:  # the first call of a run, which only loads the compiled code
+            return real(variant, counts, *rest)
+        return 0, 0, 0, 0
+
+    monkeypatch.setattr(kernels, "learn_episodes", stalled)
+    with pytest.raises(RuntimeError, match="played no episode at episode 0"):
+        _train(FROZEN_8X8, "on_policy", True, Constant(0.1), "compiled", episodes=50)
+    assert calls == [0, 50]

@@ -194,6 +194,8 @@ class CompiledEpisodes:
                 self.compile_seconds += time.perf_counter() - started
                 self._compiled_for.add(True)
                 first_call = False
+            elif not done:  # the windows always hold one more episode: a call that plays none would be called forever
+                raise RuntimeError(f"the compiled kernel played no episode at episode {state.episode} (a kernel or stream fault)")
             self._draws.advance(env_used)
             streams.acting.advance(acting_used)
             if start_used:
