@@ -64,6 +64,33 @@ def test_the_compiled_update_equals_the_python_loop_bit_for_bit(seed, variant_cl
         assert compiled.greedy.tolist() == python.greedy.tolist() == python.q.argmax(axis=1).tolist()
 
 
+def test_one_compiled_update_serves_tables_of_other_layouts_in_turn():
+    # The update keeps numba's compiled entry point for the arrays it last saw and calls it
+    # directly. A table whose arrays are laid out otherwise (Fortran order here; a restored
+    # state is a new table too) needs another compiled version: called through the old one,
+    # its values would be read with the wrong strides and the twins below would differ.
+    rng = np.random.default_rng(11)
+    variant = OnPolicy(gamma=0.9, first_visit=True, step_size=None)
+    update = CompiledUpdate(variant)
+    c_order = ActionValues.zeros(6, 4)
+    f_order = ActionValues(*(np.asfortranarray(np.zeros((6, 4), dtype=dtype)) for dtype in (np.float64, np.int64, np.float64)), np.zeros(6, dtype=np.int64))
+    twins = [(c_order, ActionValues.zeros(6, 4)), (f_order, ActionValues.zeros(6, 4))]
+    for k in range(40):
+        values, python = twins[int(rng.integers(2))]
+        length = int(rng.integers(4, 12))
+        states, actions = rng.integers(6, size=length).tolist(), rng.integers(4, size=length).tolist()
+        rewards = rng.normal(size=length).tolist()
+        count_visits = bool(rng.integers(2))
+        assert update.update_lists(values, states, actions, rewards, [1.0] * length, 0.0, count_visits=count_visits) == variant.update_lists(python, states, actions, rewards, [1.0] * length, 0.0)
+        for s in states:
+            python.state_visits[s] += 1
+            values.state_visits[s] += not count_visits
+    for values, python in twins:
+        assert np.count_nonzero(values.visits) > 10
+        for name in ("q", "visits", "state_visits"):
+            np.testing.assert_array_equal(getattr(values, name), getattr(python, name), err_msg=name)
+
+
 @pytest.mark.parametrize("variant_class", [ExploringStarts, OnPolicy, OffPolicy])
 def test_a_restock_run_ends_the_same_whichever_update_learned_its_long_seasons(variant_class, monkeypatch):
     # A season is 14 days (7.5 on average from an exploring start): with the threshold in

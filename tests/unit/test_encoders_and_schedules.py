@@ -43,6 +43,25 @@ def test_every_form_of_a_multidiscrete_observation_encodes_alike():
             enc.encode(bad)
 
 
+def test_a_remembered_observation_encodes_as_before_and_its_reshaped_twin_still_fails(monkeypatch):
+    # A one-row int64 array seen in range is looked up by its bytes the next time. Breakage
+    # caught: a memo keyed on bytes alone (a (3, 1) array has its row's bytes, a negative
+    # start shifts nothing), a memo that outgrows its limit, or one that stores a wrong index.
+    monkeypatch.setattr("qtally.envs.encoders.MEMO_LIMIT", 20)
+    space = spaces.MultiDiscrete([3, 4, 5], start=[1, -2, 0], seed=7)
+    enc = encoder_for_space(space)
+    samples = [space.sample() for _ in range(60)]
+    expected = [int(np.ravel_multi_index(sample - space.start, (3, 4, 5))) for sample in samples]
+    assert [enc.encode(sample) for sample in samples] == expected
+    assert [enc.encode(sample.copy()) for sample in samples] == expected  # the second time, from the memo where it holds them
+    memo = enc.fast_encode.__globals__["memo"]
+    assert 0 < len(memo) <= 20
+    remembered = np.frombuffer(next(iter(memo)), dtype=np.int64)
+    for twin in (remembered.reshape(3, 1), remembered.reshape(1, 3)):
+        with pytest.raises(EncoderError):
+            enc.encode(twin)
+
+
 def test_batches_from_arrays_lists_and_frames_agree():
     enc = encoder_for_space(spaces.MultiDiscrete([3, 4]))
     rows = [[0, 1], [2, 3], [1, 0]]

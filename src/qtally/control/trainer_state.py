@@ -51,12 +51,13 @@ class LogWindow:
     steps_used: int = 0
 
     def add(self, total_reward: float, length: int, epsilon: float, truncated: bool, capped: bool, steps_used: int) -> None:
+        """Count one episode in (the flags are bools, which add as 0 and 1)."""
         self.episodes += 1
         self.return_sum += total_reward
         self.length_sum += length
         self.epsilon_sum += epsilon
-        self.truncated += int(truncated)
-        self.capped += int(capped)
+        self.truncated += truncated
+        self.capped += capped
         self.steps_used += steps_used
 
     def sums(self) -> np.ndarray:

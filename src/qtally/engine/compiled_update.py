@@ -1,7 +1,7 @@
 """The gym path's update of a long episode, run by the compiled engine's own code.
 
 The variants' Python loops (:mod:`qtally.control.variants`) cost about half a microsecond
-per step; :func:`qtally.engine.kernels.update_episode`, the update the compiled engine
+per step; :func:`qtally.engine.kernels.update_played`, the update the compiled engine
 runs, costs a couple of microseconds per call (handing the lists over) and little per
 step, and counts the episode's state visits on the way. The trainer takes it for
 episodes of at least :data:`COMPILED_FROM` steps and the Python loop for shorter ones. Both do the same sums in the same order, so the choice
@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import sys
 from importlib.util import find_spec
+from itertools import chain
 
 import numpy as np
 
@@ -45,6 +46,7 @@ class CompiledUpdate:
     def __init__(self, variant):
         self.variant = variant
         self._update = None
+        self._bound = None  # (q, greedy, counts, visits, weights, entry point): see _bind
         self._first_time: np.ndarray | None = None  # scratch of one entry per pair, -1 between calls
         self._first_time_of: np.ndarray | None = None  # the Q table it was made for
         self._counters = np.zeros(2, dtype=np.int64)  # the kernel's coverage count; unused here
@@ -73,13 +75,16 @@ class CompiledUpdate:
         self._first_visit = bool(variant.first_visit)
         self._gamma = float(variant.gamma)
         self._step_size = step_size_code(variant)
-        self._update = kernels.update_episode
+        self._update = kernels.update_played
+        self._bound = None
 
     def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float, *, count_visits: bool = False) -> int:
         """The variant's ``update_lists``; ``count_visits`` also adds each step's state to ``values.state_visits``.
 
-        The lists go over as numpy arrays (``np.fromiter``): numba types an array argument
-        in a fraction of the time it takes for a buffer such as ``array.array``.
+        The lists go over as numpy arrays (``np.fromiter``; states and actions as one): numba
+        types an array argument in a fraction of the time it takes for a buffer such as
+        ``array.array``. The call goes straight to the compiled code for these argument
+        types (:meth:`_bind`), past numba's per-call typing of all fifteen arguments.
         """
         if self._update is None:
             self._load()
@@ -87,9 +92,31 @@ class CompiledUpdate:
         if q is not self._first_time_of:  # a new table (a restored state): scratch of its size
             self._first_time, self._first_time_of = np.full(q.size, -1, dtype=np.int64), q
         length = len(states)
-        return self._update(
-            q, values.visits, values.cumulative_weights, values.greedy_array, values.state_visits if count_visits else None,
-            np.fromiter(states, np.int64, length), np.fromiter(actions, np.int64, length), np.fromiter(rewards, np.float64, length),
-            np.fromiter(probabilities, np.float64, length) if self._weighted else self._unread, length,
+        greedy = values.greedy_array
+        counts = values.state_visits if count_visits else None
+        args = (
+            q, values.visits, values.cumulative_weights, greedy, counts,
+            np.fromiter(chain(states, actions), np.int64, 2 * length), np.fromiter(rewards, np.float64, length),
+            np.fromiter(probabilities, np.float64, length) if self._weighted else self._unread,
             float(tail_value), self._code, self._first_visit, self._gamma, self._step_size, self._first_time, self._counters,
         )
+        bound = self._bound
+        if bound is not None and q is bound[0] and greedy is bound[1] and counts is bound[2] and values.visits is bound[3] and values.cumulative_weights is bound[4]:
+            return bound[5](*args)
+        return self._bind(args)
+
+    def _bind(self, args: tuple) -> int:
+        """Run the update through numba's dispatcher, then keep its compiled entry point for these arrays.
+
+        Every other argument is made here with fixed types, so while the tables are the same
+        arrays the types are the same and the entry point is the one numba would pick; a new
+        table binds again. Where numba keeps no entry point for them, the dispatcher stays.
+        """
+        used = self._update(*args)
+        dispatcher = self._update
+        try:
+            entry = dispatcher.overloads[tuple(dispatcher.typeof_pyval(a) for a in args)].entry_point
+        except (AttributeError, KeyError):  # numba moved its internals: the dispatcher does every call
+            entry = dispatcher
+        self._bound = (args[0], args[3], args[4], args[1], args[2], entry)
+        return used

@@ -7,7 +7,7 @@ the acting decision (:func:`qtally.policy.table_policy.epsilon_greedy_decision`)
 schedules (:mod:`qtally.control.schedules`), the tail value (:mod:`qtally.control.truncation`
 and each variant's ``tail_value``) and the backward updates (:mod:`qtally.control.variants`).
 The tests hold the two paths to equality, Q table bit for bit. :func:`update_episode` also
-serves the gym path for long episodes (:mod:`qtally.engine.compiled_update`).
+serves the gym path for long episodes, through :func:`update_played` (:mod:`qtally.engine.compiled_update`).
 
 Uniforms come in windows from three streams (environment, acting, starts); the kernel
 stops before an episode that might run out of any and says how many it read.
@@ -134,6 +134,17 @@ def update_episode(q, visits, weights, greedy, state_visits, states, actions, re
         for t in range(length):
             first_time[states[t] * n_actions + actions[t]] = -1
     return used
+
+
+@njit(cache=True)
+def update_played(q, visits, weights, greedy, state_visits, steps, rewards, probabilities, tail, variant, first_visit, gamma, step_size, first_time, counters):
+    """:func:`update_episode` of an episode played in Python: ``steps`` holds its states, then its actions.
+
+    One array for both: the gym path hands an episode over in a numpy conversion and an
+    argument fewer, which short episodes notice (:mod:`qtally.engine.compiled_update`).
+    """
+    length = steps.shape[0] // 2
+    return update_episode(q, visits, weights, greedy, state_visits, steps[:length], steps[length:], rewards, probabilities, length, tail, variant, first_visit, gamma, step_size, first_time, counters)
 
 
 @njit(cache=True, inline="always")  # inlined into each entry point below, where the variant is a constant
