@@ -16,8 +16,8 @@ left are at least :data:`REPAYS_LOADING` (:meth:`CompiledUpdate.load_if_it_pays`
 from __future__ import annotations
 
 import sys
+from array import array
 from importlib.util import find_spec
-from itertools import chain
 
 import numpy as np
 
@@ -27,9 +27,9 @@ from ..control.variants import ExploringStarts, OffPolicy, OnPolicy
 __all__ = ["COMPILED_FROM", "REPAYS_LOADING", "CompiledUpdate"]
 
 # Episodes this long or longer go to the compiled update: measured on restocking seasons, the
-# Python loop costs about 0.5 + 0.45 n microseconds for n steps, the compiled one 1.7 + 0.05 n
-# (they cross at 3 steps).
-COMPILED_FROM = 4
+# Python loop costs about 0.4 + 0.4 n microseconds for n steps before counting the visits
+# (about 0.1 n more), the compiled one 1.3 + 0.06 n with them (a tie at 2 steps).
+COMPILED_FROM = 3
 # Steps left that repay loading numba and the kernels in a fresh process (about 1.5 s at
 # about 0.4 microseconds saved per step, measured on this project's machines).
 REPAYS_LOADING = 4_000_000
@@ -51,7 +51,7 @@ class CompiledUpdate:
         self._first_time: np.ndarray | None = None  # scratch of one entry per pair, -1 between calls
         self._first_time_of: np.ndarray | None = None  # the Q table it was made for
         self._counters = np.zeros(2, dtype=np.int64)  # the kernel's coverage count; unused here
-        self._unread = np.zeros(0)  # what stands for the behaviour probabilities where nothing reads them
+        self._unread = array("d")  # what stands for the behaviour probabilities where nothing reads them
         # numba found (not imported: kernels load at the first update), and a variant whose update
         # the kernel has: a subclass may have changed it, so only the three classes themselves.
         self.available = find_spec("numba") is not None and type(variant) in (ExploringStarts, OnPolicy, OffPolicy)
@@ -82,23 +82,23 @@ class CompiledUpdate:
     def update_lists(self, values: ActionValues, states: list, actions: list, rewards: list, probabilities: list, tail_value: float, *, count_visits: bool = False) -> int:
         """The variant's ``update_lists``; ``count_visits`` also adds each step's state to ``values.state_visits``.
 
-        The lists go over as numpy arrays (``np.fromiter``; states and actions as one): numba
-        types an array argument in a fraction of the time it takes for a buffer such as
-        ``array.array``. The call goes straight to the compiled code for these argument
-        types (:meth:`_bind`), past numba's per-call typing of all fifteen arguments.
+        The lists go over as ``array.array`` buffers (states and actions as one), built in
+        about half the time of numpy arrays (``np.fromiter``) and unboxed as fast. The call
+        goes straight to the compiled code for these argument types (:meth:`_bind`), past
+        numba's per-call typing of all fifteen arguments, which costs more for a buffer
+        than for an array.
         """
         if self._update is None:
             self._load()
         q = values.q
         if q is not self._first_time_of:  # a new table (a restored state): scratch of its size
             self._first_time, self._first_time_of = np.full(q.size, -1, dtype=np.int64), q
-        length = len(states)
         greedy = values.greedy_array
         counts = values.state_visits if count_visits else None
         args = (
             q, values.visits, values.cumulative_weights, greedy, counts,
-            np.fromiter(chain(states, actions), np.int64, 2 * length), np.fromiter(rewards, np.float64, length),
-            np.fromiter(probabilities, np.float64, length) if self._weighted else self._unread,
+            array("q", states + actions), array("d", rewards),
+            array("d", probabilities) if self._weighted else self._unread,
             float(tail_value), self._code, self._first_visit, self._gamma, self._step_size, self._first_time, self._counters,
         )
         bound = self._bound

@@ -142,18 +142,21 @@ class GymEpisodes:
         cap = self._cap
         length = 0
         # EpsilonGreedyActing's own lines, run here instead of called: one call fewer per step.
+        # Its probabilities are written once the episode is over: each step's is the greedy
+        # one except where an exploring draw picked another action (listed in ``explored``).
         inline = choose.__class__ is EpsilonGreedyActing
         if inline:
             greedy, epsilon, n_actions, next_uniform = choose.greedy, choose.epsilon, choose.n_actions, choose.next_uniform
-            explore, exploit = choose.explore, choose.exploit
+            explored: list[int] = []
+            add_explored = explored.append
         # The first action outside the loop, the others at the loop's end: no test for a forced one per step.
         action, probability = (int(first_action), 1.0) if first_action is not None else choose(state)
+        add_probability(probability)
         while True:
             observation, reward, terminated, truncated, _ = step(action)
             add_state(state)
             add_action(action)
             add_reward(float(reward))
-            add_probability(probability)
             length += 1
             state = encode(observation)
             if terminated or truncated:
@@ -163,14 +166,19 @@ class GymEpisodes:
                 capped = not self._limit_first
                 break
             if inline:
-                best = greedy[state]
                 u = next_uniform()
                 if u < epsilon:
                     action = min(int(u / epsilon * n_actions), n_actions - 1)
-                    probability = exploit if action == best else explore
+                    if action != greedy[state]:
+                        add_explored(length)
                 else:
-                    action, probability = best, exploit
+                    action = greedy[state]
             else:
                 action, probability = choose(state)
+                add_probability(probability)
+        if inline:  # the first step's probability as chosen, every other the greedy one but where explored
+            probabilities += [choose.exploit] * (length - 1)
+            for k in explored:
+                probabilities[k] = choose.explore
         # Positional: keyword construction costs three times as much, once per episode.
         return PlayedEpisode(states, actions, rewards, probabilities, float(sum(rewards)), bool(terminated), bool(truncated and not terminated), capped, state)

@@ -111,7 +111,7 @@ class EpisodePlayer:
         else:  # one epsilon for the whole episode (0 for a variant that acts greedily)
             epsilon = 0.0 if self._greedy_only else variant.behaviour_epsilon(schedule(episode, 0))
             choose = self._acting
-            if choose is None or choose.epsilon != epsilon or choose.greedy is not greedy or choose.next_uniform != next_uniform:
+            if choose is None or choose.epsilon != epsilon or choose.greedy is not greedy or choose.next_uniform is not next_uniform:
                 choose = self._acting = EpsilonGreedyActing(greedy, epsilon, n_actions, next_uniform)  # kept while nothing changes
 
         played = self.episodes.play(choose, start_observation=start_observation, first_action=first_action)
