@@ -62,3 +62,18 @@ def test_quick_collection_benchmark_writes_its_table_and_json(tmp_path):
         assert row["of_one_worker"] == (1.0 if row["workers"] == 1 else row["episodes_per_second"] / rows[rows.index(row) - 1]["episodes_per_second"])
     table = (out / "bench_collect.md").read_text()
     assert table.count("| ComputingDesk | local |") == 2 and table.count("| WaitingDesk | local |") == 2
+
+
+def test_quick_simulator_in_run_benchmark_prints_every_case(tmp_path):
+    # Breakages caught: a case missing from the table, a call count of zero (a timer that was
+    # never installed where the run calls the simulator reads as 0 ns), a crash in either loop.
+    script = SCRIPT.with_name("bench_simulator_in_run.py")
+    out = tmp_path / "sim.md"
+    result = subprocess.run([sys.executable, str(script), "--quick", "--out", str(out)], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr[-2000:]
+    rows = [line for line in out.read_text().splitlines() if line.startswith("| ") and not line.startswith("| environment")]
+    assert [tuple(cell.strip() for cell in row.split("|")[1:3]) for row in rows] == [
+        ("restock", "exploring_starts"), ("restock", "on_policy"), ("blackjack", "exploring_starts"), ("frozen_lake_8x8", "exploring_starts")]
+    for row in rows:
+        numbers = [float(cell.split()[0].replace(",", "")) for cell in row.split("|")[3:-1]]
+        assert len(numbers) == 6 and all(n > 0 for n in numbers), row
