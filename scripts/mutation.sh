@@ -7,7 +7,7 @@
 #   MUTATION_SHOW=1 scripts/mutation.sh ...   also print the diff of every surviving mutant
 #
 # Short names: returns schedules action_values variants streams truncation trainer_state
-# episodes table_policy exact prediction.
+# episodes table_policy exact prediction gym_episodes player seeded_evaluation.
 #
 # What is mutated and which tests judge the mutants is configured in pyproject.toml,
 # [tool.mutmut]: the fast unit tests only. Set up from a clean checkout with
@@ -30,8 +30,11 @@ declare -A MODULE=(
     [table_policy]=qtally.policy.table_policy
     [exact]=qtally.evaluate.exact
     [prediction]=qtally.evaluate.prediction
+    [gym_episodes]=qtally.engine.episodes
+    [player]=qtally.engine.player
+    [seeded_evaluation]=qtally.evaluate.seeded_evaluation
 )
-ORDER=(returns schedules action_values variants streams truncation trainer_state episodes table_policy exact prediction)
+ORDER=(returns schedules action_values variants streams truncation trainer_state episodes table_policy exact prediction gym_episodes player seeded_evaluation)
 
 score_only=0
 if [[ "${1:-}" == "--score" ]]; then
@@ -74,13 +77,16 @@ if [[ $score_only -eq 0 ]]; then
     tr '\r' '\n' < "$log" | grep -v '^\s*$' | tail -n 1
 fi
 
-MUTMUT_RESULTS=$(mutmut results --all true) python3 - "${prefixes[@]}" <<'PY'
+# The verdicts go through a file: with every module mutated they are too long for one argument.
+mkdir -p mutants
+mutmut results --all true > mutants/results.txt
+python3 - "${prefixes[@]}" <<'PY'
 import os, subprocess, sys
 from collections import Counter
 
 prefixes = sys.argv[1:]
 status = {}
-for line in os.environ["MUTMUT_RESULTS"].splitlines():
+for line in open("mutants/results.txt", encoding="utf-8").read().splitlines():
     name, _, verdict = line.strip().rpartition(": ")
     if any(name.startswith(prefix + ".") for prefix in prefixes):
         status[name] = verdict

@@ -154,8 +154,9 @@ def check_environment(cfg: DictConfig) -> tuple[str, list[Finding]]:
         actions = np.random.default_rng(cfg.seed).integers(environment.n_actions, size=4096)
         first, second = (_episodes(environment, cfg.seed + 1, actions, 3, min(cap, 2000)) for _ in range(2))
         same = first == second
-        findings.append(Finding("reproducible", same, "reset(seed=...) replays the same episodes: a seed pins a run" if same else
-                                "reset(seed=...) did not replay the same episodes: runs cannot be repeated; seed the environment's randomness from self.np_random"))
+        findings.append(Finding("reproducible", same, "reset(seed=...) replays the same episodes: a seed pins a run, and evaluations replay only what a policy change alters" if same else
+                                "reset(seed=...) did not replay the same episodes: runs cannot be repeated and every evaluation plays all its episodes; "
+                                "seed the environment's randomness from self.np_random"))
         step_seconds, length, probed, busy = _speed(environment, float(cfg.probe_seconds), cfg.seed, min(cap, 100_000))
     except Exception as exc:  # reset or step broke: nothing can be trained
         environment.close()

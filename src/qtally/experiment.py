@@ -358,6 +358,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         initial_value=cfg.initial_value,
         step_cap=cfg.env.step_cap,
         eval_seed=cfg.eval_seed,
+        eval_replay=cfg.get("eval_replay", "changed"),  # a run resumed from before the key existed
         engine=cfg.engine,
         checkpoint_every=cfg.get("checkpoint_every", 0),
         collect=collect_settings(cfg),
@@ -397,6 +398,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
             progress.close()
     mlflow.log_metric("visited_state_share", outcome.artifact.visited_share)
     mlflow.set_tag("qtally.engine", f"{outcome.engine}: {outcome.engine_reason}"[:250])
+    mlflow.set_tag("qtally.evaluation", outcome.evaluation_note[:250])
     if outcome.engine == "compiled":
         mlflow.log_metric("engine_compile_seconds", outcome.compile_seconds)
     with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:

@@ -35,7 +35,8 @@ from .engine.compiled_update import COMPILED_FROM, CompiledUpdate
 from .engine.episodes import GymEpisodes
 from .engine.player import EpisodePlayer, Experience
 from .envs.factory import TabularEnvironment, make_environment
-from .evaluate.rollouts import greedy_rollout_returns, summarise_returns
+from .evaluate.rollouts import summarise_returns
+from .evaluate.seeded_evaluation import SeededEvaluation
 from .policy.artifact import PolicyArtifact
 from .policy.table_policy import Fallback, greedy_actions
 from .tracking.sink import NullRecorder, Recorder, log_metric_columns
@@ -81,6 +82,7 @@ class TrainingSettings:
     engine: str = "auto"  # auto | gym | compiled (qtally.engine.compiled)
     checkpoint_every: int = 0  # 0: checkpoints only when stopped (and at the end, if a checkpoint hook is given)
     eval_seed: int | None = None  # None: the evaluation stream of ``seed``; a number: shared by every run that names it
+    eval_replay: str = "changed"  # changed: an evaluation plays again only episodes a policy change can alter | all (qtally.evaluate.seeded_evaluation)
     collect: CollectSettings = field(default_factory=CollectSettings)  # who plays the episodes (qtally.engine.collection)
 
 
@@ -95,6 +97,7 @@ class TrainingOutcome:
     engine: str = "gym"
     engine_reason: str = ""
     compile_seconds: float = 0.0
+    evaluation_note: str = ""  # how the evaluations were played (SeededEvaluation.summary)
 
 
 class Trainer:
@@ -154,6 +157,7 @@ class Trainer:
         # variant's Python loop learns from every episode.
         self.long_episode_update: CompiledUpdate | None = CompiledUpdate(variant) if self.engine == "gym" else None
         self.eval_seeds = evaluation_seeds(evaluation_base(settings.seed, settings.eval_seed), settings.eval_episodes)
+        self.evaluation = SeededEvaluation(self.eval_seeds, self.step_cap, settings.eval_replay)
 
     # ------------------------------------------------------------ pieces
 
@@ -188,12 +192,16 @@ class Trainer:
         record_metrics(self.state.history, (step,), {name: (float(value),) for name, value in metrics.items()})
 
     def evaluate(self) -> dict[str, float]:
-        """Greedy rollouts on the private evaluation environment and fixed seeds, plus every probe."""
+        """Greedy rollouts on the private evaluation environment and fixed seeds, plus every probe.
+
+        Only the episodes a change of the greedy policy can alter are played again
+        (:mod:`qtally.evaluate.seeded_evaluation`): the returns are those of playing them all.
+        """
         if self._evaluation_environment is None:
             self._evaluation_environment = make_environment(self.environment.spec)
             self._owns_evaluation_environment = True
         q = self.state.values.q
-        returns = greedy_rollout_returns(self._evaluation_environment, greedy_actions(q), self.eval_seeds, self.step_cap)
+        returns = self.evaluation.returns(self._evaluation_environment, greedy_actions(q))
         summary = summarise_returns(returns)
         metrics = {"eval_return_mean": summary.mean, "eval_return_ci95": summary.ci95}
         for probe in self.probes:
@@ -414,6 +422,7 @@ class Trainer:
             engine=self.engine,
             engine_reason=self.engine_reason,
             compile_seconds=getattr(self.episodes, "compile_seconds", 0.0),
+            evaluation_note=self.evaluation.summary(),
         )
 
 

@@ -34,6 +34,7 @@ CASES = [
     (["env.step_cap=0"], ["env.step_cap=0", "positive number of steps", "null"]),
     (["env.step_cap=-10"], ["env.step_cap=-10", "positive number of steps"]),
     (["engine=fast"], ["engine='fast'", "auto, gym, compiled"]),
+    (["eval_replay=some"], ["eval_replay='some'", "changed, all"]),
     (["schedule=linear", "schedule.epsilon=1.5"], ["schedule.epsilon=1.5 does not apply to schedule=linear", "start, end, decay_episodes"]),
 
     (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),

@@ -77,3 +77,18 @@ def test_quick_simulator_in_run_benchmark_prints_every_case(tmp_path):
     for row in rows:
         numbers = [float(cell.split()[0].replace(",", "")) for cell in row.split("|")[3:-1]]
         assert len(numbers) == 6 and all(n > 0 for n in numbers), row
+
+
+def test_quick_evaluation_benchmark_reports_equal_returns_and_reuse(tmp_path):
+    # Breakages caught: a case missing, the two ways logging different evaluations (the script
+    # exits 1 and prints "NO"), evaluations that replay everything (a share of 100%), a timing of 0.
+    script = SCRIPT.with_name("bench_evaluation.py")
+    out = tmp_path / "evaluation.md"
+    result = subprocess.run([sys.executable, str(script), "--quick", "--out", str(out)], capture_output=True, text=True, timeout=600)
+    assert result.returncode == 0, result.stdout[-2000:] + result.stderr[-2000:]
+    rows = [[cell.strip() for cell in line.split("|")[1:-1]] for line in out.read_text().splitlines() if line.startswith("| ") and not line.startswith("| environment")]
+    assert [row[:2] for row in rows] == [["frozen_lake_4x4", "on_policy"], ["blackjack", "exploring_starts"], ["restock", "on_policy"]]
+    for row in rows:
+        assert row[-1] == "yes", row
+        assert 0 < int(row[-2].rstrip("%")) < 100, row
+        assert all(float(cell) > 0 for cell in (row[4], row[5], row[7], row[8])), row

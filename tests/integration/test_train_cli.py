@@ -1,6 +1,7 @@
 """`qtally-train` end to end through the command line, then the run read back with the MLflow client."""
 
 import math
+import re
 
 import numpy as np
 import pandas as pd
@@ -35,6 +36,10 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     # engine=auto took the compiled engine (FrozenLake lists its outcomes) and said so.
     assert "engine:       compiled (FrozenLake-v1 lists its outcomes (16 states), compiled in" in result.stdout
     assert run.data.tags["qtally.engine"].startswith("compiled: ") and client.get_metric_history(run_id, "engine_compile_seconds")
+    # Two evaluations of 50 episodes: the first plays all of them, the second those the policy change reached (plus 4 as a check).
+    note = run.data.tags["qtally.evaluation"]
+    played = re.fullmatch(r"episodes played again only where the greedy action changed: (\d+) of 100 \(\d+%\)", note)
+    assert played and 50 < int(played.group(1)) <= 100 and note in result.stdout, note
     # Params: the flattened resolved config.
     assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
     assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.kind"] == "glie_episode"

@@ -60,6 +60,7 @@ def _train(cfg: DictConfig) -> str | float | None:
             line += f"  optimality_gap={evaluation['optimality_gap']:.4g}  optimal_action_fraction={evaluation['optimal_action_fraction']:.3f}"
         print(f"run {summary.run_id} finished: {line}")
         print(f"  evaluation:   {ranking_note(evaluation.get('eval_return_ci95', float('nan')), cfg.eval_episodes, cfg.env.get('eval_resolution'))}")
+        print(f"                {summary.outcome.evaluation_note}")
         if summary.outcome.capped_episodes:
             print(f"  step cap:     {summary.outcome.capped_episodes} episode(s) reached env.step_cap={summary.outcome.step_cap} and were cut (treated as env.truncation={cfg.env.truncation})")
         outcome = summary.outcome

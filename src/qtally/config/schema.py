@@ -98,6 +98,7 @@ class TrainConfig:
     log_every: int = 100
     eval_every: int = 1000
     eval_episodes: int = 200
+    eval_replay: str = "changed"  # changed: evaluations play again only episodes a policy change can alter | all
     snapshot_every: int = 0
     initial_value: float = 0.0
     exact: bool = True

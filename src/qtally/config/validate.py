@@ -10,6 +10,7 @@ from ..control.schedules import SCHEDULE_KINDS
 from ..control.variants import VARIANT_NAMES
 from ..control.truncation import TRUNCATION_CHOICES
 from ..engine.compiled import ENGINE_CHOICES
+from ..evaluate.seeded_evaluation import REPLAY_CHOICES
 from ..policy.table_policy import FALLBACK_RULES
 
 __all__ = ["ConfigError", "validate", "validate_env", "validate_collect", "schedule_parameters"]
@@ -104,6 +105,9 @@ def validate(cfg: DictConfig) -> None:
     engine = cfg.get("engine", "auto")
     if engine not in ENGINE_CHOICES:
         raise ConfigError(f"engine={engine!r} is unknown; choose one of {', '.join(ENGINE_CHOICES)}")
+    replay = cfg.get("eval_replay", "changed")
+    if replay not in REPLAY_CHOICES:
+        raise ConfigError(f"eval_replay={replay!r} is unknown; choose one of {', '.join(REPLAY_CHOICES)}")
     for key in ("log_every", "eval_episodes"):
         if cfg[key] <= 0:
             raise ConfigError(f"{key}={cfg[key]} must be positive")

@@ -2,7 +2,8 @@
 
 Evaluation uses its own environment instance and a fixed list of seeds, so every
 evaluation during a run (and every run with the same ``seed``) plays the same
-situations: differences between evaluations come from the policy, not the dice.
+situations: differences between evaluations come from the policy, not the dice. The
+returns are played by :class:`~qtally.evaluate.seeded_evaluation.SeededEvaluation`.
 """
 
 from __future__ import annotations
@@ -12,10 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from ..engine.episodes import GymEpisodes
-from ..envs.factory import TabularEnvironment
-
-__all__ = ["ReturnSummary", "summarise_returns", "greedy_rollout_returns"]
+__all__ = ["ReturnSummary", "summarise_returns"]
 
 
 @dataclass(frozen=True)
@@ -38,18 +36,3 @@ def summarise_returns(returns: np.ndarray) -> ReturnSummary:
         return ReturnSummary(mean=float(returns.mean()) if n else float("nan"), ci95=float("nan"), n=n)
     half_width = stats.t.ppf(0.975, n - 1) * returns.std(ddof=1) / np.sqrt(n)
     return ReturnSummary(mean=float(returns.mean()), ci95=float(half_width), n=n)
-
-
-def greedy_rollout_returns(environment: TabularEnvironment, actions: np.ndarray, seeds: np.ndarray, step_cap: int) -> np.ndarray:
-    """Undiscounted return of the deterministic policy ``actions[state]`` from each seeded reset."""
-    table = np.asarray(actions, dtype=np.int64).tolist()
-    episodes = GymEpisodes(environment, step_cap)
-
-    def choose(state: int) -> tuple[int, float]:
-        return table[state], 1.0
-
-    returns = np.empty(len(seeds))
-    for i, seed in enumerate(seeds):
-        episodes.seed(int(seed))
-        returns[i] = episodes.play(choose).total_reward
-    return returns
