@@ -78,6 +78,12 @@ def _trainer(name: str, variant_name: str, episodes: int, engine: str, seed: int
 
 def _timed_run(trainer, pause_at: int | None = None):
     """Seconds of ``trainer.run(pause_at)`` less the greedy evaluations in it (timed apart, as the evaluation is not training), and its outcome."""
+    seconds, evaluating, outcome = timed_run_parts(trainer, pause_at)
+    return seconds - evaluating, outcome
+
+
+def timed_run_parts(trainer, pause_at: int | None = None):
+    """``(seconds of trainer.run(pause_at), seconds of the greedy evaluations in it, outcome)``."""
     evaluate = trainer.evaluate
     evaluating = [0.0]
 
@@ -92,9 +98,29 @@ def _timed_run(trainer, pause_at: int | None = None):
     start = time.perf_counter()
     try:
         outcome = trainer.run(pause_at=pause_at)
-        return time.perf_counter() - start - evaluating[0], outcome
+        return time.perf_counter() - start, evaluating[0], outcome
     finally:
         del trainer.evaluate
+
+
+def table_script(argv, description: str, measure, markdown, default_repeats: int, repeats_help: str) -> list[dict]:
+    """The command line of a benchmark that prints one Markdown table: ``--quick``, ``--repeats``, ``--out FILE``; returns its rows."""
+    parser = argparse.ArgumentParser(description=description)
+    parser.add_argument("--quick", action="store_true", help="small runs, to check the script works")
+    parser.add_argument("--repeats", type=int, default=None, help=f"{repeats_help}; the median is reported (default {default_repeats}, quick 1)")
+    parser.add_argument("--out", type=Path, default=None, help="also write the table to this Markdown file")
+    args = parser.parse_args(argv)
+    repeats = args.repeats if args.repeats is not None else (1 if args.quick else default_repeats)
+    if repeats < 1:
+        parser.error("--repeats must be at least 1")
+    rows = measure(args.quick, repeats)
+    table = markdown(rows, repeats)
+    print()
+    print(table, end="")
+    if args.out is not None:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        args.out.write_text(table)
+    return rows
 
 
 def _steps(outcome, log_every: int = 100) -> float:

@@ -21,12 +21,13 @@ Medians over ``--repeats``; which way runs first alternates between repeats.
 
 from __future__ import annotations
 
-import argparse
 import statistics
 import sys
-import time
 from importlib import resources
 from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).parent))
+import bench  # noqa: E402  (the timing of a run apart from its evaluations, and the command line)
 
 # (env, variant, schedule kind, schedule parameters, episodes, quick episodes): the README's training examples
 CASES = (
@@ -66,22 +67,8 @@ def _trainer(name: str, variant: str, kind: str, parameters: dict, episodes: int
 
 def _timed(trainer) -> tuple[float, float, dict]:
     """``(evaluation seconds, run seconds, logged evaluations)`` of one run."""
-    evaluate = trainer.evaluate
-    spent = [0.0]
-
-    def timed_evaluate():
-        start = time.perf_counter()
-        try:
-            return evaluate()
-        finally:
-            spent[0] += time.perf_counter() - start
-
-    trainer.evaluate = timed_evaluate
-    start = time.perf_counter()
-    outcome = trainer.run()
-    seconds = time.perf_counter() - start
-    logged = {name: list(outcome.history[name]) for name in ("eval_return_mean", "eval_return_ci95")}
-    return spent[0], seconds, logged
+    seconds, evaluating, outcome = bench.timed_run_parts(trainer)
+    return evaluating, seconds, {name: list(outcome.history[name]) for name in ("eval_return_mean", "eval_return_ci95")}
 
 
 def measure(quick: bool, repeats: int) -> list[dict]:
@@ -129,21 +116,7 @@ def markdown(rows: list[dict], repeats: int) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description="Evaluation time with eval_replay=changed against eval_replay=all, side by side.")
-    parser.add_argument("--quick", action="store_true", help="small runs, to check the script works")
-    parser.add_argument("--repeats", type=int, default=None, help="runs each way per case; the median is reported (default 3, quick 1)")
-    parser.add_argument("--out", type=Path, default=None, help="also write the table to this Markdown file")
-    args = parser.parse_args(argv)
-    repeats = args.repeats if args.repeats is not None else (1 if args.quick else 3)
-    if repeats < 1:
-        parser.error("--repeats must be at least 1")
-    rows = measure(args.quick, repeats)
-    table = markdown(rows, repeats)
-    print()
-    print(table, end="")
-    if args.out is not None:
-        args.out.parent.mkdir(parents=True, exist_ok=True)
-        args.out.write_text(table)
+    rows = bench.table_script(argv, "Evaluation time with eval_replay=changed against eval_replay=all, side by side.", measure, markdown, 3, "runs each way per case")
     return 0 if all(r["same_returns"] for r in rows) else 1
 
 

@@ -23,7 +23,6 @@ trainer's presence, which ``bench.py`` counts as overhead although no qtally lin
 
 from __future__ import annotations
 
-import argparse
 import statistics
 import sys
 import time
@@ -141,21 +140,7 @@ def markdown(rows: list[dict], repeats: int) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description="The simulator's own calls inside a training run against a bare loop.")
-    parser.add_argument("--quick", action="store_true", help="small runs, to check the script works")
-    parser.add_argument("--repeats", type=int, default=None, help="timed runs per figure; the median is reported (default 5, quick 1)")
-    parser.add_argument("--out", type=Path, default=None, help="also write the table to this Markdown file")
-    args = parser.parse_args(argv)
-    repeats = args.repeats if args.repeats is not None else (1 if args.quick else 5)
-    if repeats < 1:
-        parser.error("--repeats must be at least 1")
-    rows = measure(args.quick, repeats)
-    table = markdown(rows, repeats)
-    print()
-    print(table, end="")
-    if args.out is not None:
-        args.out.parent.mkdir(parents=True, exist_ok=True)
-        args.out.write_text(table)
+    bench.table_script(argv, "The simulator's own calls inside a training run against a bare loop.", measure, markdown, 5, "timed runs per figure")
     return 0
 
 
