@@ -5,7 +5,8 @@ with probability 1/2 the move slips and the walker stays put. Reaching cell 4 en
 episode with reward 1; every step costs 0.1 and the episode is cut after 12 steps. The
 slips are drawn from a module-level generator, so ``reset(seed=...)`` does not repeat an
 episode: the environment breaks Gymnasium's seeding contract on purpose, as a hand-written
-simulator may by drawing from the ``random`` module.
+simulator may by drawing from the ``random`` module. :class:`QuietForgetfulWalk` pays
+nothing, so only the path of an episode shows the break.
 """
 
 from __future__ import annotations
@@ -35,3 +36,11 @@ class ForgetfulWalk(gym.Env):
             self.cell = min(4, self.cell + 1) if int(action) == 1 else max(0, self.cell - 1)
         done = self.cell == 4
         return self.cell, (1.0 if done else 0.0) - 0.1, done, False, {}
+
+
+class QuietForgetfulWalk(ForgetfulWalk):
+    """The same walk paying nothing: two plays of a seed differ in their path, never in their return."""
+
+    def step(self, action):
+        cell, _, done, truncated, info = super().step(action)
+        return cell, 0.0, done, truncated, info

@@ -99,8 +99,9 @@ def test_replay_all_plays_every_episode_every_time():
     assert "44 of 80 (55%)" in remembered.summary()  # the second plays 4 of the 40 it keeps, as a check
 
 
-def test_an_environment_that_does_not_repeat_a_seed_is_played_in_full():
-    environment = make_environment(EnvironmentSpec(id="support.forgetful:ForgetfulWalk", max_episode_steps=12))
+@pytest.mark.parametrize("walk", ["ForgetfulWalk", "QuietForgetfulWalk"])  # the second differs in its paths only
+def test_an_environment_that_does_not_repeat_a_seed_is_played_in_full(walk):
+    environment = make_environment(EnvironmentSpec(id=f"support.forgetful:{walk}", max_episode_steps=12))
     seeds = evaluation_seeds(3, 30)
     evaluation = SeededEvaluation(seeds, STEP_CAP)
     table = np.ones(environment.n_states, dtype=np.int64)
@@ -112,6 +113,27 @@ def test_an_environment_that_does_not_repeat_a_seed_is_played_in_full():
     evaluation.returns(environment, table)
     assert evaluation.played == len(seeds)  # the same policy, yet every episode again
     assert evaluation.summary().startswith("every episode played at every evaluation (the evaluation environment played seed")
+
+
+def test_the_check_waits_for_an_evaluation_that_keeps_episodes():
+    # The second evaluation changes the start state's action, so every episode is played
+    # again and none is kept: nothing can be checked yet. The third keeps them all, so the
+    # check must run there. Breakage: the check counted as done when it played nothing.
+    environment = make_environment(EnvironmentSpec(id="support.forgetful:ForgetfulWalk", max_episode_steps=12))
+    seeds = evaluation_seeds(9, 20)
+    evaluation = SeededEvaluation(seeds, STEP_CAP)
+    first, second = np.ones(environment.n_states, dtype=np.int64), np.ones(environment.n_states, dtype=np.int64)
+    first[0] = 0  # left at the start: the walker never leaves cell 0, slips or not
+    evaluation.returns(environment, first)
+    evaluation.returns(environment, second)
+    assert evaluation.played == len(seeds) and evaluation.reuse_off_reason is None
+    evaluation.returns(environment, second)
+    assert evaluation.reuse_off_reason is not None
+
+
+def test_a_summary_before_any_evaluation_reads_none_played():
+    # A run paused before its first evaluation still reports; breakage: a division by zero.
+    assert SeededEvaluation([1, 2, 3], 10).summary() == "episodes played again only where the greedy action changed: 0 of 0 (0%)"
 
 
 def test_an_unknown_replay_rule_is_refused():

@@ -47,7 +47,6 @@ class SeededEvaluation:
             raise ValueError(f"replay={replay!r} is unknown; choose one of {', '.join(REPLAY_CHOICES)}")
         self.seeds = [int(s) for s in seeds]
         self.step_cap = int(step_cap)
-        self.replay = replay
         self.reuse_off_reason: str | None = None if replay == "changed" else "eval_replay=all"
         self.played = self.played_total = self.asked_total = 0
         self._actions: np.ndarray | None = None  # the policy the remembered episodes were played with
