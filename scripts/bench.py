@@ -29,8 +29,10 @@ JSON file (``--out``, default ``bench-results/``):
 4. **recording.** Wall time of a run with full MLflow recording against the same run with
    recording off, fixed cost aside, in pairs whose order alternates (the median of the
    paired overheads is reported), and the same cost measured inside the recorded runs (the
-   time spent in the MLflow sink, which a drifting machine cannot skew); and the fixed cost
-   of one run (imports, opening the store, artifacts, the model) on its own.
+   time spent in the MLflow sink, which a drifting machine cannot skew); the metric values
+   the run sends and the sink's time per value (the store's own cost, which no training
+   speed changes); and the fixed cost of one run (imports, opening the store, artifacts,
+   the model) on its own.
 
 Greedy evaluations are timed apart and left out of every training time (the final one,
 about 2 ms, is there in every run). Every figure is a median over ``--repeats`` runs (the ratios to bare stepping and to the
@@ -368,10 +370,13 @@ class _SinkClock:
 
     def __init__(self):
         self.seconds = 0.0
+        self.values = 0  # metric values queued (each is one row of MLflow's store)
         self._depth = 0
 
-    def wrap(self, function):
+    def wrap(self, function, counts_values: bool = False):
         def timed(*args, **kwargs):
+            if counts_values:  # log_metrics(self, metrics, step)
+                self.values += len(args[1])
             self._depth += 1
             start = time.perf_counter()
             try:
@@ -400,7 +405,7 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
     from qtally.config.schema import register_schema
     from qtally.experiment import _exact_probes, prepare, run_training
     from qtally.tracking.mlflow_sink import MlflowRecorder
-    from qtally.trainer import TrainingSettings, train
+    from qtally.trainer import TrainingSettings, logging_window, train
 
     register_schema()
     with tempfile.TemporaryDirectory(prefix="qtally-bench-") as scratch:
@@ -410,14 +415,14 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
             with initialize_config_module(config_module="qtally.configs", version_base=None):
                 return compose(config_name="train", overrides=[f"episodes={n}", f"tracking.uri=sqlite:///{store}", "quiet=true"])
 
-        sink_seconds = []
+        sink_seconds, sink_values = [], []
 
         def recorded(n: int) -> float:
             cfg = config(n)
             clock = _SinkClock()
             originals = {name: getattr(MlflowRecorder, name) for name in ("log_metrics", "flush", "log_file")}
             for name, function in originals.items():
-                setattr(MlflowRecorder, name, clock.wrap(function))
+                setattr(MlflowRecorder, name, clock.wrap(function, counts_values=name == "log_metrics"))
             try:
                 start = time.perf_counter()
                 run_training(cfg)
@@ -426,13 +431,14 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
                 for name, function in originals.items():
                     setattr(MlflowRecorder, name, function)
             sink_seconds.append(clock.seconds)
+            sink_values.append(clock.values)
             return seconds
 
         def unrecorded(n: int) -> float:
             cfg = config(n)
             variant, schedule, environment, evaluation_environment = prepare(cfg)
             probes, _, _ = _exact_probes(environment, cfg.gamma)
-            settings = TrainingSettings(episodes=n, seed=cfg.seed, log_every=cfg.log_every, eval_every=cfg.eval_every, eval_episodes=cfg.eval_episodes,
+            settings = TrainingSettings(episodes=n, seed=cfg.seed, log_every=logging_window(cfg.log_every, n), eval_every=cfg.eval_every, eval_episodes=cfg.eval_episodes,
                                         truncation=cfg.env.truncation, eval_seed=cfg.eval_seed, engine=cfg.engine)
             start = time.perf_counter()
             train(environment, variant, schedule, settings, evaluation_environment=evaluation_environment, probes=probes)
@@ -446,7 +452,8 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
             fixed_pairs.append(recorded(1) - unrecorded(1))
             fixed_sinks.append(sink_seconds[-1])
         fixed, fixed_sink = statistics.median(fixed_pairs), statistics.median(fixed_sinks)
-        in_run = []
+        fixed_values = sink_values[-1]
+        in_run, per_value = [], []
         # Paired, in alternating order (recorded first, then unrecorded first, ...): a slow spell
         # of the machine then falls on both sides of a pair instead of on one block of runs.
         fulls, offs, overheads = [], [], []
@@ -460,6 +467,7 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
             overheads.append((fulls[-1] - fixed - offs[-1]) / offs[-1])
             variable_sink = sink_seconds[-1] - fixed_sink
             in_run.append(variable_sink / (fulls[-1] - fixed - variable_sink))
+            per_value.append(variable_sink / max(1, sink_values[-1] - fixed_values))
         full, off = statistics.median(fulls), statistics.median(offs)
         cold = float("nan")
         if not quick:  # a new process pays every import: measured apart, and not in quick mode
@@ -468,8 +476,10 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
             cold = time.perf_counter() - start
     result = {"episodes": episodes, "recorded_seconds": full, "unrecorded_seconds": off, "fixed_seconds_in_process": fixed,
               "fixed_seconds_new_process": cold, "overhead": statistics.median(overheads), "overhead_range": [min(overheads), max(overheads)],
-              "in_run_overhead": statistics.median(in_run), "in_run_overhead_range": [min(in_run), max(in_run)]}
+              "in_run_overhead": statistics.median(in_run), "in_run_overhead_range": [min(in_run), max(in_run)],
+              "metric_values": sink_values[-1], "sink_microseconds_per_value": 1e6 * statistics.median(per_value)}
     print(f"  recording: {result['overhead']:+.1%} of wall time paired, {result['in_run_overhead']:+.1%} in the run, "
+          f"{result['metric_values']:,} metric values at {result['sink_microseconds_per_value']:.0f} µs each, "
           f"fixed cost {fixed:.1f} s in process, {cold:.1f} s from a new process", flush=True)
     return result
 
@@ -515,6 +525,7 @@ def markdown(results: dict) -> str:
         f"- Recording: {recording['in_run_overhead']:+.1%} of wall time measured in the run (time inside the MLflow sink; {recording['in_run_overhead_range'][0]:+.1%} to "
         f"{recording['in_run_overhead_range'][1]:+.1%}), {recording['overhead']:+.1%} by paired wall times (median; {recording['overhead_range'][0]:+.1%} to {recording['overhead_range'][1]:+.1%}), "
         f"for {recording['episodes']:,} episodes with full MLflow recording ({recording['recorded_seconds']:.1f} s against {recording['unrecorded_seconds']:.1f} s unrecorded, fixed cost aside); "
+        f"the run sends {recording['metric_values']:,} metric values, about {recording['sink_microseconds_per_value']:.0f} µs each in the sink (queued, sent, stored); "
         f"fixed cost of recording a run {recording['fixed_seconds_in_process']:.1f} s (store, artifacts, model); a one-episode `qtally-train` from a new process "
         f"takes {recording['fixed_seconds_new_process']:.1f} s in all (imports included).",
     ]

@@ -32,7 +32,7 @@ from .tracking.sweep import child_tags, current_sweep
 from .control.streams import evaluation_base, evaluation_seeds
 from .control.truncation import resolve_step_cap
 from .engine.collection import CollectionFailed, CollectSettings
-from .trainer import Trainer, TrainingOutcome, TrainingSettings, TrainingStopped
+from .trainer import Trainer, TrainingOutcome, TrainingSettings, TrainingStopped, logging_window
 
 __all__ = ["QtallyError", "RunSummary", "run_training", "environment_spec", "bundled_environment_spec"]
 
@@ -350,7 +350,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     settings = TrainingSettings(
         episodes=cfg.episodes,
         seed=cfg.seed,
-        log_every=cfg.log_every,
+        log_every=logging_window(cfg.log_every, cfg.episodes),
         eval_every=cfg.eval_every,
         eval_episodes=cfg.eval_episodes,
         snapshot_every=cfg.snapshot_every,
@@ -363,6 +363,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         checkpoint_every=cfg.get("checkpoint_every", 0),
         collect=collect_settings(cfg),
     )
+    mlflow.set_tag("qtally.log_every", f"{settings.log_every}" + (" (auto)" if cfg.log_every == "auto" else ""))
     progress = progress_factory(cfg.episodes) if progress_factory else None
     trainer = Trainer(
         environment,

@@ -35,6 +35,8 @@ CASES = [
     (["env.step_cap=-10"], ["env.step_cap=-10", "positive number of steps"]),
     (["engine=fast"], ["engine='fast'", "auto, gym, compiled"]),
     (["eval_replay=some"], ["eval_replay='some'", "changed, all"]),
+    (["log_every=often"], ["log_every=often must be auto or a positive number"]),
+    (["log_every=0"], ["log_every=0 must be auto or a positive number"]),
     (["schedule=linear", "schedule.epsilon=1.5"], ["schedule.epsilon=1.5 does not apply to schedule=linear", "start, end, decay_episodes"]),
 
     (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),

@@ -36,6 +36,9 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
     assert data["compile"]["warm_seconds"] > 0 and math.isfinite(data["recording"]["overhead"])
     low, high = data["recording"]["in_run_overhead_range"]
     assert low <= data["recording"]["in_run_overhead"] <= high and math.isfinite(high), data["recording"]
+    # values, not calls: every 100-episode window of the main job logs 7 metrics at once
+    assert data["recording"]["metric_values"] >= 7 * data["recording"]["episodes"] // 100, data["recording"]
+    assert 0 < data["recording"]["sink_microseconds_per_value"] < 1e6, data["recording"]
     table = (tmp_path / "out" / "bench.md").read_text()
     for env in ("frozen_lake_8x8", "blackjack", "restock"):
         assert table.count(f"| {env} |") == 3

@@ -40,6 +40,7 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     note = run.data.tags["qtally.evaluation"]
     played = re.fullmatch(r"episodes played again only where the greedy action changed: (\d+) of 100 \(\d+%\)", note)
     assert played and 50 < int(played.group(1)) <= 100 and note in result.stdout, note
+    assert run.data.tags["qtally.log_every"] == "50"  # as given; the default, auto, is tagged "100 (auto)" on such a run
     # Params: the flattened resolved config.
     assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
     assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.kind"] == "glie_episode"
@@ -84,6 +85,7 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
 def test_blackjack_model_takes_observation_parts_as_columns(run_cli, tmp_path):
     run_cli("qtally-train", "env=blackjack", "variant=exploring_starts", "episodes=3000", "eval_episodes=20", "gamma=1.0", check=True)
     client, run = _only_run(tmp_path)
+    assert run.data.tags["qtally.log_every"] == "100 (auto)" and len(client.get_metric_history(run.info.run_id, "return_mean")) == 30
     mlflow.set_tracking_uri(f"sqlite:///{tmp_path / 'mlflow.db'}")
     info = mlflow.models.get_model_info(f"runs:/{run.info.run_id}/policy")
     assert info.metadata["observation_columns"] == ["player_sum", "dealer_card", "usable_ace"]

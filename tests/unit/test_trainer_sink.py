@@ -6,7 +6,19 @@ from qtally.control.schedules import LinearDecay
 from qtally.control.variants import make_variant
 from qtally.envs.factory import EnvironmentSpec, make_environment
 from qtally.tracking.sink import MemoryRecorder
-from qtally.trainer import TrainingSettings, train
+from qtally.trainer import AUTO_LOG_WINDOWS, TrainingSettings, logging_window, train
+
+
+@pytest.mark.parametrize(("episodes", "window"), [(1, 100), (5000, 100), (100_000, 100), (100_001, 200), (200_000, 200), (200_001, 500),
+                                                   (500_000, 500), (750_000, 1000), (2_000_000, 2000), (3_000_000, 5000), (10_000_001, 20000)])
+def test_an_automatic_window_keeps_a_run_to_a_thousand_windows_of_round_size(episodes, window):
+    # Breakage caught: a window below 100 on short runs, more than 1,000 windows on a long
+    # one, a window larger than needed (skipping a step of 1, 2, 5 times ten), ceil as floor.
+    assert logging_window("auto", episodes) == window and episodes / window <= AUTO_LOG_WINDOWS
+
+
+def test_a_window_given_as_a_number_is_kept_whatever_the_run_length():
+    assert logging_window(7, 10_000_000) == 7 and logging_window(100, 1) == 100
 
 
 def test_windows_evaluations_and_snapshots_reach_the_sink():

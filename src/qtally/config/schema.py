@@ -95,7 +95,7 @@ class TrainConfig:
     seed: int = 0
     repeat_seeds: Optional[list[int]] = None  # in a sweep, train each job once per seed listed (seed-averaged searches)
     eval_seed: Optional[int] = 0  # evaluation episodes' seed, independent of seed; null: derived from seed
-    log_every: int = 100
+    log_every: Any = "auto"  # auto (qtally.trainer.logging_window) or episodes per logging window
     eval_every: int = 1000
     eval_episodes: int = 200
     eval_replay: str = "changed"  # changed: evaluations play again only episodes a policy change can alter | all

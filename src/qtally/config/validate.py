@@ -108,9 +108,11 @@ def validate(cfg: DictConfig) -> None:
     replay = cfg.get("eval_replay", "changed")
     if replay not in REPLAY_CHOICES:
         raise ConfigError(f"eval_replay={replay!r} is unknown; choose one of {', '.join(REPLAY_CHOICES)}")
-    for key in ("log_every", "eval_episodes"):
-        if cfg[key] <= 0:
-            raise ConfigError(f"{key}={cfg[key]} must be positive")
+    log_every = cfg.log_every
+    if log_every != "auto" and (isinstance(log_every, bool) or not isinstance(log_every, int) or log_every <= 0):
+        raise ConfigError(f"log_every={log_every} must be auto or a positive number of episodes per logging window")
+    if cfg.eval_episodes <= 0:
+        raise ConfigError(f"eval_episodes={cfg.eval_episodes} must be positive")
     for key in ("eval_every", "snapshot_every", "checkpoint_every"):
         if cfg[key] < 0:
             raise ConfigError(f"{key}={cfg[key]} must be 0 (off) or a positive episode count")
