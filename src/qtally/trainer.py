@@ -18,6 +18,7 @@ policy for on-policy control, the greedy one otherwise).
 
 from __future__ import annotations
 
+import itertools
 import tempfile
 from dataclasses import dataclass, field
 from functools import partial
@@ -77,10 +78,10 @@ def logging_window(log_every: int | str, episodes: int) -> int:
     if log_every != "auto":
         return int(log_every)
     needed = -(-int(episodes) // AUTO_LOG_WINDOWS)  # ceil
-    window = 100
-    while window < needed:
-        window = window * 5 // 2 if str(window)[0] == "2" else window * 2  # 100, 200, 500, 1000, ...
-    return window
+    for power in itertools.count(2):  # 100, 200, 500, 1000, 2000, ...
+        for lead in (1, 2, 5):
+            if lead * 10**power >= needed:
+                return lead * 10**power
 
 
 class ProgressSink(Protocol):
