@@ -365,18 +365,19 @@ def peak_memory(counts: tuple[int, int]) -> dict:
     return result
 
 
-class _SinkClock:
-    """Seconds spent inside qtally's MLflow sink (metrics queued and sent, files stored), counting outermost calls only."""
+class _CallClock:
+    """Seconds spent inside the calls it wraps (the MLflow sink, training, the model), counting outermost calls only."""
 
     def __init__(self):
         self.seconds = 0.0
         self.values = 0  # metric values queued (each is one row of MLflow's store)
         self._depth = 0
 
-    def wrap(self, function, counts_values: bool = False):
+    def wrap(self, function, counts_values=None):
+        """``function`` timed; ``counts_values(args)``, if given, says how many metric values a call queues."""
         def timed(*args, **kwargs):
-            if counts_values:  # log_metrics(self, metrics, step)
-                self.values += len(args[1])
+            if counts_values is not None and not self._depth:
+                self.values += counts_values(args)
             self._depth += 1
             start = time.perf_counter()
             try:
@@ -392,20 +393,26 @@ class _SinkClock:
 def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict:
     """Full MLflow recording against none, on the main job's defaults, and the fixed cost of a run.
 
-    Two views of the same cost. *Paired*: recorded and unrecorded runs in pairs of
-    alternating order, their wall times compared (what the target names; on a shared
-    machine whose speed drifts, a pair of 40-second runs can differ by a tenth with
-    nothing changed). *In the run*: the time the recorded runs spend inside the MLflow
-    sink, less what a one-episode run spends there, against the rest of the run; a slow
-    spell slows both parts alike, so this view does not drift. Recording adds nothing to
-    a run but the sink's calls (the trainer builds the same metrics either way).
+    A recorded run has two parts: training (``Trainer.run`` and the last send of queued
+    metrics), where the recording cost the target names is paid, and everything before
+    and after it (the store, the config, the pictures, the tables, the model), the fixed
+    cost, reported apart. Both are timed inside each recorded run. Two views of the
+    recording cost: *paired*, the recorded training part against an unrecorded ``train()``
+    of the same run, in pairs of alternating order (on a shared machine whose speed
+    drifts, a pair can differ by a tenth with nothing changed); *in the run*, the time the
+    recorded training spends inside the MLflow sink against the rest of it (a slow spell
+    slows both alike, so this view does not drift). The model's share of the fixed cost is
+    timed on its own: MLflow's ``log_model`` reads back every metric value of the run.
     """
     from hydra import compose, initialize_config_module
+    from mlflow.tracking import MlflowClient
 
+    import qtally.experiment as experiment
+    import qtally.tracking.policy_model as policy_model
     from qtally.config.schema import register_schema
     from qtally.experiment import _exact_probes, prepare, run_training
     from qtally.tracking.mlflow_sink import MlflowRecorder
-    from qtally.trainer import TrainingSettings, logging_window, train
+    from qtally.trainer import Trainer, TrainingSettings, logging_window, train
 
     register_schema()
     with tempfile.TemporaryDirectory(prefix="qtally-bench-") as scratch:
@@ -415,23 +422,29 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
             with initialize_config_module(config_module="qtally.configs", version_base=None):
                 return compose(config_name="train", overrides=[f"episodes={n}", f"tracking.uri=sqlite:///{store}", "quiet=true"])
 
-        sink_seconds, sink_values = [], []
+        measured: list[dict] = []
+        writers = set()
 
         def recorded(n: int) -> float:
             cfg = config(n)
-            clock = _SinkClock()
-            originals = {name: getattr(MlflowRecorder, name) for name in ("log_metrics", "flush", "log_file")}
-            for name, function in originals.items():
-                setattr(MlflowRecorder, name, clock.wrap(function, counts_values=name == "log_metrics"))
+            sink, training, model = _CallClock(), _CallClock(), _CallClock()
+            counts = {"log_metrics": lambda args: len(args[1]), "log_metric_columns": lambda args: len(args[1]) * len(args[2])}  # (self, metrics, step), (self, steps, columns)
+            patches = [(MlflowRecorder, name, sink.wrap(getattr(MlflowRecorder, name), counts.get(name))) for name in ("log_metrics", "log_metric_columns", "flush", "log_file")]
+            patches += [(Trainer, "run", training.wrap(Trainer.run)), (experiment, "_send_or_keep", training.wrap(experiment._send_or_keep)),
+                        (policy_model, "log_policy_model", model.wrap(policy_model.log_policy_model))]
+            originals = [(owner, name, getattr(owner, name)) for owner, name, _ in patches]
+            for owner, name, timed in patches:
+                setattr(owner, name, timed)
             try:
                 start = time.perf_counter()
-                run_training(cfg)
+                summary = run_training(cfg)
                 seconds = time.perf_counter() - start
             finally:
-                for name, function in originals.items():
-                    setattr(MlflowRecorder, name, function)
-            sink_seconds.append(clock.seconds)
-            sink_values.append(clock.values)
+                for owner, name, function in originals:
+                    setattr(owner, name, function)
+            tags = MlflowClient(summary.tracking_uri).get_run(summary.run_id).data.tags
+            writers.add(tags.get("qtally.metric_writer", "?"))
+            measured.append({"seconds": seconds, "training": training.seconds, "sink": sink.seconds, "values": sink.values, "model": model.seconds})
             return seconds
 
         def unrecorded(n: int) -> float:
@@ -446,41 +459,42 @@ def recording_overhead(episodes: int, repeats: int, quick: bool = False) -> dict
 
         recorded(1)  # opens the store and warms every import
         unrecorded(1)
-        # The fixed cost is what recording adds to a one-episode run (the store, the artifacts, the model).
-        fixed_pairs, fixed_sinks = [], []
+        one_episode = []
         for _ in range(repeats):
-            fixed_pairs.append(recorded(1) - unrecorded(1))
-            fixed_sinks.append(sink_seconds[-1])
-        fixed, fixed_sink = statistics.median(fixed_pairs), statistics.median(fixed_sinks)
-        fixed_values = sink_values[-1]
-        in_run, per_value = [], []
+            recorded(1)
+            one_episode.append(measured[-1]["seconds"] - measured[-1]["training"])
         # Paired, in alternating order (recorded first, then unrecorded first, ...): a slow spell
         # of the machine then falls on both sides of a pair instead of on one block of runs.
-        fulls, offs, overheads = [], [], []
+        runs, offs, overheads = [], [], []
         for k in range(repeats):
             if k % 2:
                 offs.append(unrecorded(episodes))
-                fulls.append(recorded(episodes))
+                recorded(episodes)
             else:
-                fulls.append(recorded(episodes))
+                recorded(episodes)
                 offs.append(unrecorded(episodes))
-            overheads.append((fulls[-1] - fixed - offs[-1]) / offs[-1])
-            variable_sink = sink_seconds[-1] - fixed_sink
-            in_run.append(variable_sink / (fulls[-1] - fixed - variable_sink))
-            per_value.append(variable_sink / max(1, sink_values[-1] - fixed_values))
-        full, off = statistics.median(fulls), statistics.median(offs)
+            runs.append(measured[-1])
+            overheads.append((runs[-1]["training"] - offs[-1]) / offs[-1])
+        in_run = [r["sink"] / (r["training"] - r["sink"]) for r in runs]
         cold = float("nan")
         if not quick:  # a new process pays every import: measured apart, and not in quick mode
             start = time.perf_counter()
             subprocess.run(_train_command(1, Path(scratch) / "cold.db", []), cwd=scratch, capture_output=True, check=True)
             cold = time.perf_counter() - start
-    result = {"episodes": episodes, "recorded_seconds": full, "unrecorded_seconds": off, "fixed_seconds_in_process": fixed,
-              "fixed_seconds_new_process": cold, "overhead": statistics.median(overheads), "overhead_range": [min(overheads), max(overheads)],
+
+    def median(key: str) -> float:
+        return statistics.median(r[key] for r in runs)
+
+    result = {"episodes": episodes, "recorded_seconds": median("seconds"), "recorded_training_seconds": median("training"), "unrecorded_seconds": statistics.median(offs),
+              "fixed_seconds_in_run": statistics.median(r["seconds"] - r["training"] for r in runs), "model_seconds": median("model"),
+              "fixed_seconds_one_episode": statistics.median(one_episode), "fixed_seconds_new_process": cold,
+              "overhead": statistics.median(overheads), "overhead_range": [min(overheads), max(overheads)],
               "in_run_overhead": statistics.median(in_run), "in_run_overhead_range": [min(in_run), max(in_run)],
-              "metric_values": sink_values[-1], "sink_microseconds_per_value": 1e6 * statistics.median(per_value)}
-    print(f"  recording: {result['overhead']:+.1%} of wall time paired, {result['in_run_overhead']:+.1%} in the run, "
-          f"{result['metric_values']:,} metric values at {result['sink_microseconds_per_value']:.0f} µs each, "
-          f"fixed cost {fixed:.1f} s in process, {cold:.1f} s from a new process", flush=True)
+              "metric_values": runs[-1]["values"], "sink_microseconds_per_value": 1e6 * statistics.median(r["sink"] / max(1, r["values"]) for r in runs),
+              "metric_writer": ", ".join(sorted(writers))}
+    print(f"  recording: {result['overhead']:+.1%} of training time paired, {result['in_run_overhead']:+.1%} in the run, "
+          f"{result['metric_values']:,} metric values at {result['sink_microseconds_per_value']:.0f} µs each ({result['metric_writer']}), "
+          f"fixed cost {result['fixed_seconds_in_run']:.1f} s in the run (the model {result['model_seconds']:.1f} s), {cold:.1f} s for a one-episode run from a new process", flush=True)
     return result
 
 
@@ -522,12 +536,13 @@ def markdown(results: dict) -> str:
         f"- Compilation: {results['compile']['cold_seconds']:.1f} s on a machine's first run, {results['compile']['warm_seconds']:.2f} s once cached.",
         f"- Peak memory of the main job: {memory[small]:.0f} MiB after {int(small):,} episodes, {memory[large]:.0f} MiB after {int(large):,} "
         f"({memory[large] / memory[small]:.2f}x).",
-        f"- Recording: {recording['in_run_overhead']:+.1%} of wall time measured in the run (time inside the MLflow sink; {recording['in_run_overhead_range'][0]:+.1%} to "
-        f"{recording['in_run_overhead_range'][1]:+.1%}), {recording['overhead']:+.1%} by paired wall times (median; {recording['overhead_range'][0]:+.1%} to {recording['overhead_range'][1]:+.1%}), "
-        f"for {recording['episodes']:,} episodes with full MLflow recording ({recording['recorded_seconds']:.1f} s against {recording['unrecorded_seconds']:.1f} s unrecorded, fixed cost aside); "
-        f"the run sends {recording['metric_values']:,} metric values, about {recording['sink_microseconds_per_value']:.0f} µs each in the sink (queued, sent, stored); "
-        f"fixed cost of recording a run {recording['fixed_seconds_in_process']:.1f} s (store, artifacts, model); a one-episode `qtally-train` from a new process "
-        f"takes {recording['fixed_seconds_new_process']:.1f} s in all (imports included).",
+        f"- Recording: {recording['overhead']:+.1%} of training time by paired wall times (median; {recording['overhead_range'][0]:+.1%} to {recording['overhead_range'][1]:+.1%}), "
+        f"{recording['in_run_overhead']:+.1%} measured in the run (time inside the MLflow sink; {recording['in_run_overhead_range'][0]:+.1%} to {recording['in_run_overhead_range'][1]:+.1%}), "
+        f"for {recording['episodes']:,} episodes ({recording['recorded_training_seconds']:.2f} s of training recorded against {recording['unrecorded_seconds']:.2f} s unrecorded); "
+        f"the run sends {recording['metric_values']:,} metric values, about {recording['sink_microseconds_per_value']:.0f} µs each in the sink (queued, sent, stored; written as {recording['metric_writer']}).",
+        f"- Fixed cost of a recorded run: {recording['fixed_seconds_in_run']:.2f} s around the {recording['episodes']:,}-episode training (store, config, pictures, tables, model), "
+        f"{recording['fixed_seconds_one_episode']:.2f} s around a one-episode one; the model alone {recording['model_seconds']:.2f} s, as MLflow's `log_model` reads back every metric value of the run; "
+        f"a one-episode `qtally-train` from a new process takes {recording['fixed_seconds_new_process']:.1f} s in all (imports included).",
     ]
     return "\n".join(lines) + "\n"
 

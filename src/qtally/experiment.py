@@ -339,7 +339,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     if state is None:
         with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
             log_config(cfg, Path(scratch))  # first, so a run stopped early can be resumed with its config
-    recorder = MlflowRecorder(client, run_id, already_logged=already_logged)
+    recorder = MlflowRecorder(client, run_id, already_logged=already_logged, tracking_uri=mlflow.get_tracking_uri())
 
     def checkpoint(trainer: Trainer) -> Path:
         path = trainer.state.save(checkpoint_path(cfg, run_id))
@@ -363,7 +363,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
         checkpoint_every=cfg.get("checkpoint_every", 0),
         collect=collect_settings(cfg),
     )
-    mlflow.set_tag("qtally.log_every", f"{settings.log_every}" + (" (auto)" if cfg.log_every == "auto" else ""))
+    mlflow.set_tags({"qtally.log_every": f"{settings.log_every}" + (" (auto)" if cfg.log_every == "auto" else ""), "qtally.metric_writer": recorder.writer})
     progress = progress_factory(cfg.episodes) if progress_factory else None
     trainer = Trainer(
         environment,

@@ -39,10 +39,15 @@ def test_quick_benchmark_writes_its_table_and_json(tmp_path):
     # values, not calls: every 100-episode window of the main job logs 7 metrics at once
     assert data["recording"]["metric_values"] >= 7 * data["recording"]["episodes"] // 100, data["recording"]
     assert 0 < data["recording"]["sink_microseconds_per_value"] < 1e6, data["recording"]
+    # the parts of a recorded run: training inside it, the fixed cost around it, the model within that
+    recording = data["recording"]
+    assert 0 < recording["recorded_training_seconds"] < recording["recorded_seconds"], recording
+    assert 0 < recording["model_seconds"] < recording["fixed_seconds_in_run"], recording
+    assert recording["metric_writer"] == "sqlite rows", recording  # the benchmark's store is SQLite: the direct writer must be the one timed
     table = (tmp_path / "out" / "bench.md").read_text()
     for env in ("frozen_lake_8x8", "blackjack", "restock"):
         assert table.count(f"| {env} |") == 3
-    assert "Peak memory" in table and "Recording" in table and "Compilation" in table
+    assert "Peak memory" in table and "Recording" in table and "Compilation" in table and "Fixed cost" in table
 
 
 def test_bench_refuses_a_bad_repeat_count(tmp_path):

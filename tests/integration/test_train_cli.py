@@ -86,6 +86,8 @@ def test_blackjack_model_takes_observation_parts_as_columns(run_cli, tmp_path):
     run_cli("qtally-train", "env=blackjack", "variant=exploring_starts", "episodes=3000", "eval_episodes=20", "gamma=1.0", check=True)
     client, run = _only_run(tmp_path)
     assert run.data.tags["qtally.log_every"] == "100 (auto)" and len(client.get_metric_history(run.info.run_id, "return_mean")) == 30
+    assert run.data.tags["qtally.metric_writer"] == "sqlite rows"  # the curves above went into the SQLite store directly
+    assert run.data.metrics["return_mean"] == client.get_metric_history(run.info.run_id, "return_mean")[-1].value  # the latest value moved along
     mlflow.set_tracking_uri(f"sqlite:///{tmp_path / 'mlflow.db'}")
     info = mlflow.models.get_model_info(f"runs:/{run.info.run_id}/policy")
     assert info.metadata["observation_columns"] == ["player_sum", "dealer_card", "usable_ace"]

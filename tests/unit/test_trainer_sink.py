@@ -9,10 +9,10 @@ from qtally.tracking.sink import MemoryRecorder
 from qtally.trainer import AUTO_LOG_WINDOWS, TrainingSettings, logging_window, train
 
 
-@pytest.mark.parametrize(("episodes", "window"), [(1, 100), (5000, 100), (100_000, 100), (100_001, 200), (200_000, 200), (200_001, 500),
-                                                   (500_000, 500), (750_000, 1000), (2_000_000, 2000), (3_000_000, 5000), (10_000_001, 20000)])
-def test_an_automatic_window_keeps_a_run_to_a_thousand_windows_of_round_size(episodes, window):
-    # Breakage caught: a window below 100 on short runs, more than 1,000 windows on a long
+@pytest.mark.parametrize(("episodes", "window"), [(1, 100), (5000, 100), (50_000, 100), (50_001, 200), (100_000, 200), (100_001, 500),
+                                                   (250_000, 500), (375_000, 1000), (2_000_000, 5000), (3_000_000, 10000), (10_000_001, 50000)])
+def test_an_automatic_window_keeps_a_run_to_five_hundred_windows_of_round_size(episodes, window):
+    # Breakage caught: a window below 100 on short runs, more than 500 windows on a long
     # one, a window larger than needed (skipping a step of 1, 2, 5 times ten), ceil as floor.
     assert logging_window("auto", episodes) == window and episodes / window <= AUTO_LOG_WINDOWS
 
