@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Mutation testing of qtally's learning core with mutmut 3 (not run in CI).
+# Mutation testing of qtally's learning core and its metric writer with mutmut 3 (not run in CI).
 #
 #   scripts/mutation.sh                       mutate every core module, then print the score
 #   scripts/mutation.sh returns variants      only these modules (short names below)
@@ -7,7 +7,7 @@
 #   MUTATION_SHOW=1 scripts/mutation.sh ...   also print the diff of every surviving mutant
 #
 # Short names: returns schedules action_values variants streams truncation trainer_state
-# episodes table_policy exact prediction gym_episodes player seeded_evaluation.
+# episodes table_policy exact prediction gym_episodes player seeded_evaluation sqlite_metrics.
 #
 # What is mutated and which tests judge the mutants is configured in pyproject.toml,
 # [tool.mutmut]: the fast unit tests only. Set up from a clean checkout with
@@ -33,8 +33,9 @@ declare -A MODULE=(
     [gym_episodes]=qtally.engine.episodes
     [player]=qtally.engine.player
     [seeded_evaluation]=qtally.evaluate.seeded_evaluation
+    [sqlite_metrics]=qtally.tracking.sqlite_metrics
 )
-ORDER=(returns schedules action_values variants streams truncation trainer_state episodes table_policy exact prediction gym_episodes player seeded_evaluation)
+ORDER=(returns schedules action_values variants streams truncation trainer_state episodes table_policy exact prediction gym_episodes player seeded_evaluation sqlite_metrics)
 
 score_only=0
 if [[ "${1:-}" == "--score" ]]; then

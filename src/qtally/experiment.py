@@ -339,7 +339,9 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     if state is None:
         with tempfile.TemporaryDirectory(prefix="qtally-run-") as scratch:
             log_config(cfg, Path(scratch))  # first, so a run stopped early can be resumed with its config
-    recorder = MlflowRecorder(client, run_id, already_logged=already_logged, tracking_uri=mlflow.get_tracking_uri())
+    # A run resumed from before tracking.sqlite_rows existed writes rows too.
+    direct = cfg.tracking.get("sqlite_rows", True)
+    recorder = MlflowRecorder(client, run_id, already_logged=already_logged, tracking_uri=mlflow.get_tracking_uri() if direct else None)
 
     def checkpoint(trainer: Trainer) -> Path:
         path = trainer.state.save(checkpoint_path(cfg, run_id))

@@ -28,7 +28,8 @@ def _artifact_paths(client, run_id, path=None):
 
 
 def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
-    result = run_cli("qtally-train", "env=frozen_lake_4x4", "variant=on_policy", "episodes=600", "eval_every=300", "eval_episodes=50", "snapshot_every=300", "log_every=50", "seed=5", check=True)
+    result = run_cli("qtally-train", "env=frozen_lake_4x4", "variant=on_policy", "episodes=600", "eval_every=300", "eval_episodes=50", "snapshot_every=300", "log_every=50", "seed=5",
+                     "tracking.sqlite_rows=false", check=True)
     client, run = _only_run(tmp_path)
     run_id = run.info.run_id
     assert run_id in result.stdout and "mlflow ui --backend-store-uri sqlite:///mlflow.db" in result.stdout
@@ -41,6 +42,7 @@ def test_frozen_lake_run_is_recorded_completely(run_cli, tmp_path):
     played = re.fullmatch(r"episodes played again only where the greedy action changed: (\d+) of 100 \(\d+%\)", note)
     assert played and 50 < int(played.group(1)) <= 100 and note in result.stdout, note
     assert run.data.tags["qtally.log_every"] == "50"  # as given; the default, auto, is tagged "100 (auto)" on such a run
+    assert run.data.tags["qtally.metric_writer"] == "log_batch"  # asked for: MLflow's own call, whatever the store
     # Params: the flattened resolved config.
     assert run.data.params["episodes"] == "600" and run.data.params["env.id"] == "FrozenLake-v1"
     assert run.data.params["env.kwargs.map_name"] == "4x4" and run.data.params["schedule.kind"] == "glie_episode"

@@ -60,6 +60,7 @@ class TrackingConfig:
     experiment: str = "qtally"
     run_name: Optional[str] = None
     log_model: bool = True
+    sqlite_rows: bool = True  # metric values straight into a SQLite store's tables (tracking/sqlite_metrics.py)
 
 
 @dataclass
