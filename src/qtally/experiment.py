@@ -399,6 +399,8 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     finally:
         if progress is not None:
             progress.close()
+        if recorder.unsent and recorder.rows is not None:  # a run that failed: what it measured still goes into a SQLite store (a server may make log_batch wait minutes)
+            recorder.flush()
     mlflow.log_metric("visited_state_share", outcome.artifact.visited_share)
     mlflow.set_tag("qtally.engine", f"{outcome.engine}: {outcome.engine_reason}"[:250])
     mlflow.set_tag("qtally.evaluation", outcome.evaluation_note[:250])

@@ -108,3 +108,16 @@ def test_blackjack_model_takes_observation_parts_as_columns(run_cli, tmp_path):
     np.testing.assert_array_equal(model.predict(frame.to_numpy().tolist())[:2], actions[:2])
     with pytest.raises(Exception, match="3 column"):
         model.predict(np.array([[1, 2]]))
+
+
+def test_a_run_that_fails_keeps_the_metrics_it_measured(run_cli, tmp_path):
+    # The corridor raises on its 2,001st step, some 100 episodes in: the windows of 10 episodes
+    # closed before that were queued, not yet sent (a queue goes when full), and must still land.
+    corridor = ["env=cliff_walking", "env.id=support.breaking:BreakingCorridor", "env.max_episode_steps=20", "env.eval_episodes=5", "engine=gym",
+                "episodes=5000", "log_every=10", "rollout_animation=false", "tracking.log_model=false", "+env.kwargs.break_after_steps=2000"]
+    result = run_cli(*["qtally-train", *corridor])
+    assert result.returncode != 0 and "simulator broke after 2000 steps" in result.stderr and "Traceback" not in result.stderr
+    client, run = _only_run(tmp_path)
+    assert run.info.status == "FAILED"
+    steps = [m.step for m in client.get_metric_history(run.info.run_id, "return_mean")]
+    assert steps and steps == list(range(10, steps[-1] + 1, 10)), steps

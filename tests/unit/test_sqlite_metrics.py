@@ -91,7 +91,7 @@ def test_a_failed_write_leaves_nothing_behind(store, tmp_path):
     rows = SqliteMetricRows.open(f"sqlite:///{copy}", run_id)
     with sqlite3.connect(copy) as connection:  # the second statement of the write will fail
         connection.execute("DROP TABLE latest_metrics")
-    with pytest.raises(sqlite3.OperationalError):
+    with pytest.raises(sqlite3.OperationalError, match="no such table: latest_metrics"):  # the store's own error, not one from undoing it
         rows.write([("return", 1.0, 1, 1)])
     with sqlite3.connect(copy) as connection:
         assert connection.execute("SELECT COUNT(*) FROM metrics WHERE run_uuid = ?", (run_id,)).fetchone() == (0,)

@@ -55,15 +55,6 @@ def sqlite_path(tracking_uri: str) -> Path | None:
     return Path(database)
 
 
-def stored_value(value: float) -> tuple[float, bool]:
-    """(value, is_nan) as MLflow stores a metric value."""
-    if math.isnan(value):
-        return 0.0, True
-    if math.isinf(value):
-        return (_LARGEST if value > 0 else -_LARGEST), False
-    return value, False
-
-
 class SqliteMetricRows:
     """Writes a run's metric values into its SQLite store, one short transaction a batch."""
 
@@ -102,7 +93,7 @@ class SqliteMetricRows:
         if not rows:
             return
         run = self.run_id
-        values = [(key, value, timestamp, step, False, run) if isfinite(value) else _stored_row(key, value, timestamp, step, run) for key, value, timestamp, step in rows]
+        values = [(key, value, timestamp, step, False, run) if isfinite(value) else _non_finite_row(key, value, timestamp, step, run) for key, value, timestamp, step in rows]
         newest: dict[str, tuple] = {}
         for row in values:
             # The first of equals stays, as in MLflow's own comparison (strictly newer replaces).
@@ -123,9 +114,11 @@ class SqliteMetricRows:
             connection.close()
 
 
-def _stored_row(key: str, value: float, timestamp: int, step: int, run: str) -> tuple:
-    stored, is_nan = stored_value(value)
-    return (key, stored, timestamp, step, is_nan, run)
+def _non_finite_row(key: str, value: float, timestamp: int, step: int, run: str) -> tuple:
+    """A NaN or an infinity as MLflow stores it (SQL has neither): NaN as 0 with ``is_nan`` set, an infinity as the largest double of its sign."""
+    if math.isnan(value):
+        return (key, 0.0, timestamp, step, True, run)
+    return (key, _LARGEST if value > 0 else -_LARGEST, timestamp, step, False, run)
 
 
 def _connect(path: Path) -> sqlite3.Connection:
