@@ -333,7 +333,7 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
     from .envs.pictures import policy_pictures, state_values
     from .envs.rollout_animation import rollout_animation
     from .plots import learning_curve, shared_value_range
-    from .tracking.mlflow_sink import MlflowRecorder
+    from .tracking.mlflow_sink import SEND_EVERY_SECONDS, MlflowRecorder
     from .tracking.policy_model import log_policy_model
 
     if state is None:
@@ -341,7 +341,8 @@ def _train_and_record(cfg, client, run_id, variant, schedule, environment, evalu
             log_config(cfg, Path(scratch))  # first, so a run stopped early can be resumed with its config
     # A run resumed from before tracking.sqlite_rows existed writes rows too.
     direct = cfg.tracking.get("sqlite_rows", True)
-    recorder = MlflowRecorder(client, run_id, already_logged=already_logged, tracking_uri=mlflow.get_tracking_uri() if direct else None)
+    recorder = MlflowRecorder(client, run_id, already_logged=already_logged, tracking_uri=mlflow.get_tracking_uri() if direct else None,
+                              send_every=cfg.tracking.get("send_every", SEND_EVERY_SECONDS))
 
     def checkpoint(trainer: Trainer) -> Path:
         path = trainer.state.save(checkpoint_path(cfg, run_id))

@@ -37,6 +37,7 @@ CASES = [
     (["eval_replay=some"], ["eval_replay='some'", "changed, all"]),
     (["log_every=often"], ["log_every=often must be auto or a positive number"]),
     (["log_every=0"], ["log_every=0 must be auto or a positive number"]),
+    (["tracking.send_every=-1"], ["tracking.send_every=-1.0 must be a number of seconds, 0 or more"]),
     (["schedule=linear", "schedule.epsilon=1.5"], ["schedule.epsilon=1.5 does not apply to schedule=linear", "start, end, decay_episodes"]),
 
     (["env=cartpole_binned", "engine=compiled"], ["engine=compiled cannot run CartPole-v1", "use engine=gym"]),

@@ -23,10 +23,11 @@ from mlflow.tracking import MlflowClient
 from qtally.control.trainer_state import TrainerState
 
 # Long enough on the gym path to be stopped between two checkpoints (restocking seasons, ~14 steps each);
-# log_every=20 fills the recorder's 1000-metric queue between checkpoints, so some metrics after a
-# checkpoint reach the store before the kill and the resume must not send them again.
+# log_every=20 fills the recorder's 1000-metric queue between checkpoints and send_every=0 sends a full
+# queue at once (by default it waits 2 s, longer than checkpoints here are apart), so some metrics after
+# a checkpoint reach the store before the kill and the resume must not send them again.
 ARGS = ["env=restock", "engine=gym", "episodes=20000", "checkpoint_every=4000", "eval_every=8000", "eval_episodes=200",
-        "log_every=20", "rollout_animation=false", "tracking.log_model=false", "quiet=true", "seed=7"]
+        "log_every=20", "rollout_animation=false", "tracking.log_model=false", "tracking.send_every=0", "quiet=true", "seed=7"]
 
 
 def _command(*args: str) -> list[str]:

@@ -61,6 +61,7 @@ class TrackingConfig:
     run_name: Optional[str] = None
     log_model: bool = True
     sqlite_rows: bool = True  # metric values straight into a SQLite store's tables (tracking/sqlite_metrics.py)
+    send_every: float = 2.0  # seconds a full queue of metric values waits for the SQLite writer (fewer commits)
 
 
 @dataclass

@@ -111,6 +111,9 @@ def validate(cfg: DictConfig) -> None:
     log_every = cfg.log_every
     if log_every != "auto" and (isinstance(log_every, bool) or not isinstance(log_every, int) or log_every <= 0):
         raise ConfigError(f"log_every={log_every} must be auto or a positive number of episodes per logging window")
+    send_every = cfg.tracking.get("send_every", 2.0)
+    if not math.isfinite(send_every) or send_every < 0:
+        raise ConfigError(f"tracking.send_every={send_every} must be a number of seconds, 0 or more (how long a full queue of metric values may wait)")
     if cfg.eval_episodes <= 0:
         raise ConfigError(f"eval_episodes={cfg.eval_episodes} must be positive")
     for key in ("eval_every", "snapshot_every", "checkpoint_every"):
