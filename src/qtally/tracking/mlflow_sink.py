@@ -1,9 +1,9 @@
 """MLflow as the trainer's sink: metrics queued and sent in batches, files as run artifacts.
 
 One synchronous metric call costs milliseconds on a SQLite store, longer than an
-episode, so :class:`MlflowRecorder` queues metrics and sends them when the queue fills and on ``flush``. On a SQLite store
-they go straight into MLflow's metric tables
-(:class:`~qtally.tracking.sqlite_metrics.SqliteMetricRows`, about a tenth of
+episode, so :class:`MlflowRecorder` queues metrics and sends them when the queue fills
+and on ``flush``. On a SQLite store they go straight into MLflow's metric tables
+(:class:`~qtally.tracking.sqlite_metrics.SqliteMetricRows`, about a twentieth of
 ``log_batch``'s cost a value), the whole queue in one transaction, and a full queue
 waits until ``send_every`` seconds have passed since the last send, so a fast run pays
 for few commits. On any other store, or a SQLite file that module does not recognise,

@@ -20,9 +20,8 @@ checks it against ``log_batch`` value for value.
 
 from __future__ import annotations
 
-import math
-from math import isfinite
 import sqlite3
+from math import isfinite, isnan
 from pathlib import Path
 from typing import Sequence
 
@@ -116,7 +115,7 @@ class SqliteMetricRows:
 
 def _non_finite_row(key: str, value: float, timestamp: int, step: int, run: str) -> tuple:
     """A NaN or an infinity as MLflow stores it (SQL has neither): NaN as 0 with ``is_nan`` set, an infinity as the largest double of its sign."""
-    if math.isnan(value):
+    if isnan(value):
         return (key, 0.0, timestamp, step, True, run)
     return (key, _LARGEST if value > 0 else -_LARGEST, timestamp, step, False, run)
 
